@@ -1,0 +1,3 @@
+from policyc.cli import main
+
+main()

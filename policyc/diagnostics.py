@@ -1,0 +1,197 @@
+"""Located diagnostics and the exception family that carries them.
+
+Every problem policyc finds in a policy is a :class:`Diagnostic`: a stable
+kebab-case code, a severity, a message that says what to do, the key path
+inside the policy and, once located, the file, line and column.
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import asdict, dataclass, replace
+from enum import Enum
+
+__all__ = [
+    "CompileError",
+    "Diagnostic",
+    "PolicyCheckError",
+    "PolicyError",
+    "PolicySchemaError",
+    "PolicySourceError",
+    "Position",
+    "Severity",
+    "headline",
+    "json_path",
+    "render_json",
+    "render_text",
+]
+
+PathPart = str | int
+Path = tuple[PathPart, ...]
+
+
+class Severity(str, Enum):
+    ERROR = "error"
+    WARNING = "warning"
+    INFO = "info"
+
+
+@dataclass(frozen=True)
+class Position:
+    """1-based line and column of a node in the source text."""
+
+    line: int
+    column: int
+
+
+@dataclass(frozen=True)
+class Diagnostic:
+    code: str
+    severity: Severity
+    message: str
+    path: Path = ()
+    file: str | None = None
+    line: int | None = None
+    col: int | None = None
+    hint: str | None = None
+
+    @property
+    def is_error(self) -> bool:
+        return self.severity is Severity.ERROR
+
+    def located(
+        self, file: str | None, positions: Mapping[Path, Position], key_positions: Mapping[Path, Position]
+    ) -> Diagnostic:
+        """Fill in file, line and column from the nearest located ancestor of ``path``."""
+        position = _nearest_position(self.path, positions, key_positions)
+        if position is None:
+            return replace(self, file=file)
+        return replace(self, file=file, line=position.line, col=position.column)
+
+    def to_json(self) -> dict[str, object]:
+        data = asdict(self)
+        data["severity"] = self.severity.value
+        data["path"] = json_path(self.path)
+        return data
+
+
+def _nearest_position(
+    path: Path, positions: Mapping[Path, Position], key_positions: Mapping[Path, Position]
+) -> Position | None:
+    for depth in range(len(path), -1, -1):
+        prefix = path[:depth]
+        if prefix in positions:
+            return positions[prefix]
+        if prefix in key_positions:
+            return key_positions[prefix]
+    return None
+
+
+def json_path(path: Sequence[PathPart]) -> str:
+    """Render a key path JSONPath-style: ``("loss", "juice", 2)`` -> ``$.loss.juice[2]``."""
+    rendered = "$"
+    for part in path:
+        if isinstance(part, int):
+            rendered += f"[{part}]"
+        elif part.isidentifier():
+            rendered += f".{part}"
+        else:
+            rendered += "[" + json.dumps(part) + "]"
+    return rendered
+
+
+def headline(diagnostics: Iterable[Diagnostic]) -> Diagnostic | None:
+    """The most telling diagnostic: errors first, then the shallowest path (like a best match)."""
+    ranked = sorted(diagnostics, key=lambda d: (not d.is_error, len(d.path)))
+    return ranked[0] if ranked else None
+
+
+class PolicyError(Exception):
+    """Base of every error policyc reports about a policy, its data or a rule.
+
+    Carries the full list of diagnostics; ``str()`` shows the first few.
+    """
+
+    shown = 5
+
+    def __init__(self, diagnostics: Sequence[Diagnostic]) -> None:
+        self.diagnostics = tuple(diagnostics)
+        super().__init__(self._summary())
+
+    def _summary(self) -> str:
+        lines = [_one_line(d) for d in self.diagnostics[: self.shown]]
+        hidden = len(self.diagnostics) - self.shown
+        if hidden > 0:
+            lines.append(f"... and {hidden} more")
+        return "\n".join(lines)
+
+    @property
+    def codes(self) -> list[str]:
+        return [d.code for d in self.diagnostics]
+
+
+class PolicySourceError(PolicyError):
+    """The YAML text cannot be read strictly."""
+
+
+class PolicySchemaError(PolicyError):
+    """The document does not have the shape of a policy."""
+
+
+class PolicyCheckError(PolicyError):
+    """The policy is well-formed but inconsistent."""
+
+
+class CompileError(PolicyError):
+    """Fitting or compiling the policy failed (data, covariance, ...)."""
+
+
+def _location_prefix(diagnostic: Diagnostic) -> str:
+    parts = [diagnostic.file or "<policy>"]
+    if diagnostic.line is not None:
+        parts.append(str(diagnostic.line))
+        if diagnostic.col is not None:
+            parts.append(str(diagnostic.col))
+    return ":".join(parts)
+
+
+def _one_line(diagnostic: Diagnostic) -> str:
+    text = (
+        f"{_location_prefix(diagnostic)}: {diagnostic.severity.value}[{diagnostic.code}] "
+        f"{diagnostic.message}"
+    )
+    if diagnostic.path:
+        text += f" (at {json_path(diagnostic.path)})"
+    return text
+
+
+def render_text(
+    diagnostics: Iterable[Diagnostic],
+    source_lines: Mapping[str, Sequence[str]] | None = None,
+    show_source: bool = False,
+) -> str:
+    """One line per diagnostic; with ``show_source`` the offending line and a caret under the node."""
+    out: list[str] = []
+    for diagnostic in diagnostics:
+        out.append(_one_line(diagnostic))
+        if diagnostic.hint:
+            out.append(f"    hint: {diagnostic.hint}")
+        excerpt = _excerpt(diagnostic, source_lines or {}) if show_source else None
+        if excerpt:
+            out.extend(excerpt)
+    return "\n".join(out)
+
+
+def _excerpt(diagnostic: Diagnostic, source_lines: Mapping[str, Sequence[str]]) -> list[str] | None:
+    lines = source_lines.get(diagnostic.file or "")
+    if not lines or diagnostic.line is None or diagnostic.line > len(lines):
+        return None
+    text = lines[diagnostic.line - 1].rstrip("\n")
+    caret = " " * ((diagnostic.col or 1) - 1) + "^"
+    return [f"    {text}", f"    {caret}"]
+
+
+def render_json(diagnostics: Iterable[Diagnostic]) -> str:
+    """The stable JSON form: a list of objects with the fields of :class:`Diagnostic`."""
+    return json.dumps([d.to_json() for d in diagnostics], indent=2)
