@@ -64,11 +64,17 @@ def packhouse(rng: np.random.Generator) -> None:
     train = _packhouse_rows(rng, 2400, TRAINING_MIX)
     _write(folder / "train.csv", [*PACKHOUSE_FEATURES, "grade"], [[*_fruit_cells(x), g] for g, x in train])
     holdout = _packhouse_rows(rng, 800, SEASON_MIX)
-    _write(folder / "holdout.csv", ["item_id", *PACKHOUSE_FEATURES, "grade"],
-           [[f"F{i:05d}", *_fruit_cells(x), g] for i, (g, x) in enumerate(holdout)])
+    _write(
+        folder / "holdout.csv",
+        ["item_id", *PACKHOUSE_FEATURES, "grade"],
+        [[f"F{i:05d}", *_fruit_cells(x), g] for i, (g, x) in enumerate(holdout)],
+    )
     incoming = _packhouse_rows(rng, 600, SEASON_MIX)
-    _write(folder / "incoming.csv", ["item_id", *PACKHOUSE_FEATURES],
-           [[f"N{i:05d}", *_fruit_cells(x)] for i, (_, x) in enumerate(incoming)])
+    _write(
+        folder / "incoming.csv",
+        ["item_id", *PACKHOUSE_FEATURES],
+        [[f"N{i:05d}", *_fruit_cells(x)] for i, (_, x) in enumerate(incoming)],
+    )
 
 
 def _claims(rng: np.random.Generator, n: int, fraud_rate: float) -> tuple[np.ndarray, np.ndarray]:
@@ -88,18 +94,29 @@ def _claim_cells(p_fraud: float) -> list[str]:
 def claims(rng: np.random.Generator) -> None:
     folder = HERE / "claims"
     fraud, p = _claims(rng, 4000, 0.5)
-    _write(folder / "calibration.csv", ["p_legitimate", "p_fraudulent", "outcome"],
-           [[*_claim_cells(pi), "fraudulent" if f else "legitimate"] for f, pi in zip(fraud, p, strict=True)])
+    _write(
+        folder / "calibration.csv",
+        ["p_legitimate", "p_fraudulent", "outcome"],
+        [[*_claim_cells(pi), "fraudulent" if f else "legitimate"] for f, pi in zip(fraud, p, strict=True)],
+    )
     brier = float(np.mean((np.round(p, 6) - fraud) ** 2))
     print(f"claims calibration sample Brier score: {brier:.4f}")
     fraud, p = _claims(rng, 3000, FRAUD_RATE)
     amounts = rng.lognormal(7.0, 0.8, size=fraud.size)
-    _write(folder / "holdout.csv", ["claim_id", "amount_eur", "p_legitimate", "p_fraudulent", "outcome"],
-           [[f"C{i:05d}", f"{a:.2f}", *_claim_cells(pi), "fraudulent" if f else "legitimate"]
-            for i, (f, pi, a) in enumerate(zip(fraud, p, amounts, strict=True))])
+    _write(
+        folder / "holdout.csv",
+        ["claim_id", "amount_eur", "p_legitimate", "p_fraudulent", "outcome"],
+        [
+            [f"C{i:05d}", f"{a:.2f}", *_claim_cells(pi), "fraudulent" if f else "legitimate"]
+            for i, (f, pi, a) in enumerate(zip(fraud, p, amounts, strict=True))
+        ],
+    )
     fraud, p = _claims(rng, 1000, FRAUD_RATE)
-    _write(folder / "incoming.csv", ["claim_id", "p_legitimate", "p_fraudulent"],
-           [[f"K{i:05d}", *_claim_cells(pi)] for i, pi in enumerate(p)])
+    _write(
+        folder / "incoming.csv",
+        ["claim_id", "p_legitimate", "p_fraudulent"],
+        [[f"K{i:05d}", *_claim_cells(pi)] for i, pi in enumerate(p)],
+    )
 
 
 if __name__ == "__main__":

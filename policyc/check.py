@@ -155,10 +155,14 @@ def loss_matrix_names_actions_and_classes(policy: Policy, context: CheckContext)
             yield _error("loss-missing-action", f"{key} has no row for action {action!r}", (key,))
     for action, row in matrix.items():
         if action not in policy.actions:
-            hint = "the reject cost goes under reject:, not in the matrix" if (
-                policy.reject is not None and action == policy.reject.action
-            ) else None
-            yield _error("loss-unknown-action", f"{key} has a row {action!r}, which is not an action", (key, action), hint)
+            hint = (
+                "the reject cost goes under reject:, not in the matrix"
+                if (policy.reject is not None and action == policy.reject.action)
+                else None
+            )
+            yield _error(
+                "loss-unknown-action", f"{key} has a row {action!r}, which is not an action", (key, action), hint
+            )
             continue
         for name in policy.classes:
             if name not in row:
@@ -299,8 +303,9 @@ def winning_margin(loss: np.ndarray, row: int) -> tuple[float, np.ndarray]:
     a_ub = np.hstack([loss[row] - loss[others], np.ones((len(others), 1))])
     a_eq = np.hstack([np.ones((1, n_classes)), np.zeros((1, 1))])
     bounds = [(0.0, None)] * n_classes + [(None, None)]
-    result = linprog(objective, A_ub=a_ub, b_ub=np.zeros(len(others)), A_eq=a_eq, b_eq=[1.0], bounds=bounds,
-                     method="highs")
+    result = linprog(
+        objective, A_ub=a_ub, b_ub=np.zeros(len(others)), A_eq=a_eq, b_eq=[1.0], bounds=bounds, method="highs"
+    )
     if not result.success:  # pragma: no cover - the feasible set is a bounded simplex
         raise RuntimeError(f"reachability LP failed: {result.message}")
     posterior = np.clip(result.x[:n_classes], 0.0, None)
@@ -378,8 +383,7 @@ def reject_is_not_taken_everywhere(policy: Policy, context: CheckContext) -> Ite
     if cost < floor:
         yield _warning(
             "reject-always-taken",
-            f"the reject cost {cost:g} is below every loss ({floor:g} is the smallest), "
-            "so every input is deferred",
+            f"the reject cost {cost:g} is below every loss ({floor:g} is the smallest), so every input is deferred",
             ("reject",),
         )
 
@@ -418,12 +422,17 @@ def training_data_is_present_and_pinned(policy: Policy, context: CheckContext) -
     path = context.resolve(training.data)
     where = ("evidence", "training", "data")
     if not path.is_file():
-        yield _error("training-data-missing", f"training data {str(path)!r} does not exist", where,
-                     "paths are relative to the policy file")
+        yield _error(
+            "training-data-missing",
+            f"training data {str(path)!r} does not exist",
+            where,
+            "paths are relative to the policy file",
+        )
         return
     if training.sha256 is None:
         yield Diagnostic(
-            "training-data-unpinned", Severity.INFO,
+            "training-data-unpinned",
+            Severity.INFO,
             f"training data is not pinned; its sha256 is {file_sha256(path)}",
             ("evidence", "training"),
             "add sha256: so a changed file cannot silently change the rule",
@@ -452,17 +461,22 @@ def evidence_columns_cover_classes(policy: Policy, context: CheckContext) -> Ite
     columns = evidence.columns
     for name in policy.classes:
         if name not in columns:
-            yield _error("evidence-column-missing", f"evidence.columns has no column for class {name!r}",
-                         ("evidence", "columns"))
+            yield _error(
+                "evidence-column-missing", f"evidence.columns has no column for class {name!r}", ("evidence", "columns")
+            )
     for name in columns:
         if name not in policy.classes:
-            yield _error("evidence-column-unknown-class", f"evidence.columns names {name!r}, which is not a class",
-                         ("evidence", "columns", name))
+            yield _error(
+                "evidence-column-unknown-class",
+                f"evidence.columns names {name!r}, which is not a class",
+                ("evidence", "columns", name),
+            )
     counts = Counter(columns.values())
     for name, column in columns.items():
         if counts[column] > 1:
-            yield _error("duplicate-column", f"column {column!r} is used for more than one class",
-                         ("evidence", "columns", name))
+            yield _error(
+                "duplicate-column", f"column {column!r} is used for more than one class", ("evidence", "columns", name)
+            )
 
 
 def posterior_evidence_is_documented(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
@@ -474,8 +488,11 @@ def posterior_evidence_is_documented(policy: Policy, context: CheckContext) -> I
     )
     for name, value in evidence.trained_priors.items():
         if value == 0.0 and name in policy.classes:
-            yield _error("trained-prior-zero", f"trained prior of {name!r} is 0; the prior correction divides by it",
-                         ("evidence", "trained_priors", name))
+            yield _error(
+                "trained-prior-zero",
+                f"trained prior of {name!r} is 0; the prior correction divides by it",
+                ("evidence", "trained_priors", name),
+            )
     if evidence.calibration is None:
         yield _warning(
             "uncalibrated-posterior",
@@ -518,6 +535,16 @@ class CheckReport:
     diagnostics: tuple[Diagnostic, ...]
 
     @property
+    def source_lines(self) -> list[str]:
+        """The policy's lines, for excerpts; read leniently when strict loading failed."""
+        if self.document is not None:
+            return self.document.lines
+        try:
+            return Path(self.name).read_text(encoding="utf-8", errors="replace").splitlines()
+        except OSError:
+            return []
+
+    @property
     def has_errors(self) -> bool:
         return any(d.is_error for d in self.diagnostics)
 
@@ -541,10 +568,14 @@ def check_document(document: SourceDocument, rules: Sequence[Rule] = RULES, fail
     try:
         policy = build_policy(document)
     except PolicyError as exc:
-        return CheckReport(document.name, document, None, exc.diagnostics)
+        return CheckReport(document.name, document, None, _in_source_order(exc.diagnostics))
     context = CheckContext(document.base_dir)
-    diagnostics = tuple(document.locate(d) for d in run_rules(policy, context, rules, fail_fast))
-    return CheckReport(document.name, document, policy, diagnostics)
+    diagnostics = [document.locate(d) for d in run_rules(policy, context, rules, fail_fast)]
+    return CheckReport(document.name, document, policy, _in_source_order(diagnostics))
+
+
+def _in_source_order(diagnostics: Sequence[Diagnostic]) -> tuple[Diagnostic, ...]:
+    return tuple(sorted(diagnostics, key=lambda d: (d.line or 0, d.col or 0)))
 
 
 def check_file(path: str | Path, fail_fast: bool = False) -> CheckReport:

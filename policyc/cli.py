@@ -23,8 +23,10 @@ CAUTION = (
 )
 
 
-@click.group(help=f"Compile reviewed Bayes decision policies into frozen rules.\n\n{CAUTION}",
-             context_settings={"help_option_names": ["-h", "--help"]})
+@click.group(
+    help=f"Compile reviewed Bayes decision policies into frozen rules.\n\n{CAUTION}",
+    context_settings={"help_option_names": ["-h", "--help"]},
+)
 @click.version_option(__version__, prog_name="policyc")
 def main() -> None:
     pass
@@ -36,7 +38,11 @@ def _fail(error: PolicyError) -> None:
 
 
 FORMAT_OPTION = click.option(
-    "--format", "output_format", type=click.Choice(["text", "json"]), default="text", show_default=True,
+    "--format",
+    "output_format",
+    type=click.Choice(["text", "json"]),
+    default="text",
+    show_default=True,
     help="text: one line per diagnostic; json: a list of diagnostic objects.",
 )
 
@@ -46,8 +52,12 @@ FORMAT_OPTION = click.option(
 @FORMAT_OPTION
 @click.option("--strict", is_flag=True, help="Exit 1 on warnings too.")
 @click.option("--show", is_flag=True, help="Also print the loss matrix and where each action wins.")
-@click.option("--source/--no-source", "show_source", default=None,
-              help="Print the offending line with a caret (default: on a terminal).")
+@click.option(
+    "--source/--no-source",
+    "show_source",
+    default=None,
+    help="Print the offending line with a caret (default: on a terminal).",
+)
 def check(policies: tuple[Path, ...], output_format: str, strict: bool, show: bool, show_source: bool | None) -> None:
     """Validate POLICY files and analyse their consistency.
 
@@ -66,13 +76,14 @@ def check(policies: tuple[Path, ...], output_format: str, strict: bool, show: bo
 
 
 def _echo_report(report: CheckReport, show_source: bool, show: bool) -> None:
-    lines = {report.name: report.document.lines} if report.document else {}
+    lines = {report.name: report.source_lines} if show_source else {}
     if report.diagnostics:
         click.echo(render_text(report.diagnostics, lines, show_source))
     counts = {s: sum(d.severity.value == s for d in report.diagnostics) for s in ("error", "warning", "info")}
     verdict = "errors" if counts["error"] else "ok"
-    click.echo(f"{report.name}: {verdict} ({counts['error']} errors, {counts['warning']} warnings, "
-               f"{counts['info']} notes)")
+    click.echo(
+        f"{report.name}: {verdict} ({counts['error']} errors, {counts['warning']} warnings, {counts['info']} notes)"
+    )
     if show and report.policy is not None:
         _echo_policy_tables(report)
 
@@ -84,14 +95,18 @@ def _echo_policy_tables(report: CheckReport) -> None:
     if regions is None:
         return
     unit = f" ({policy.loss_unit})" if policy.loss_unit else ""
-    click.echo(f"\nloss{unit}, loss[action][true class]:" if policy.loss is not None
-               else f"\ngain{unit} as stated, gain[action][true class]:")
+    click.echo(
+        f"\nloss{unit}, loss[action][true class]:"
+        if policy.loss is not None
+        else f"\ngain{unit} as stated, gain[action][true class]:"
+    )
     sign = 1.0 if policy.loss is not None else -1.0
     click.echo(format_matrix(sign * policy.loss_matrix(), policy.actions, policy.classes, "action", "true class"))
     if policy.reject is not None:
         value = policy.reject.cost if policy.reject.cost is not None else policy.reject.gain
-        click.echo(f"reject: {policy.reject.action} at {'cost' if policy.reject.cost is not None else 'gain'} "
-                   f"{value:g}")
+        click.echo(
+            f"reject: {policy.reject.action} at {'cost' if policy.reject.cost is not None else 'gain'} {value:g}"
+        )
     click.echo("\nwhere each choice wins (example posterior at the largest margin):")
     for region in regions:
         posterior = ", ".join(f"{c}={p:.3f}" for c, p in zip(policy.classes, region.example_posterior, strict=True))

@@ -10,7 +10,7 @@ from __future__ import annotations
 import json
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import asdict, dataclass, replace
-from enum import Enum
+from enum import StrEnum
 
 __all__ = [
     "CompileError",
@@ -31,7 +31,7 @@ PathPart = str | int
 Path = tuple[PathPart, ...]
 
 
-class Severity(str, Enum):
+class Severity(StrEnum):
     ERROR = "error"
     WARNING = "warning"
     INFO = "info"
@@ -157,10 +157,7 @@ def _location_prefix(diagnostic: Diagnostic) -> str:
 
 
 def _one_line(diagnostic: Diagnostic) -> str:
-    text = (
-        f"{_location_prefix(diagnostic)}: {diagnostic.severity.value}[{diagnostic.code}] "
-        f"{diagnostic.message}"
-    )
+    text = f"{_location_prefix(diagnostic)}: {diagnostic.severity.value}[{diagnostic.code}] {diagnostic.message}"
     if diagnostic.path:
         text += f" (at {json_path(diagnostic.path)})"
     return text

@@ -104,16 +104,12 @@ class PosteriorEvidence(_Strict):
 
     kind: Literal["posterior"]
     columns: dict[Name, Name] = Field(description="class -> column of its probability")
-    trained_priors: dict[Name, Probability] = Field(
-        description="class priors the upstream model was trained under"
-    )
+    trained_priors: dict[Name, Probability] = Field(description="class priors the upstream model was trained under")
     calibration: Calibration | None = None
     sum_tolerance: Annotated[float, Field(gt=0.0, le=0.1)] = Field(
         default=1e-6, description="rows whose probabilities sum further than this from 1 are invalid"
     )
-    renormalise: bool = Field(
-        default=False, description="divide each row by its sum instead of treating it as invalid"
-    )
+    renormalise: bool = Field(default=False, description="divide each row by its sum instead of treating it as invalid")
 
 
 class LogLikelihoodEvidence(_Strict):
@@ -123,9 +119,7 @@ class LogLikelihoodEvidence(_Strict):
     columns: dict[Name, Name] = Field(description="class -> column of its log-likelihood")
 
 
-Evidence = Annotated[
-    GaussianEvidence | PosteriorEvidence | LogLikelihoodEvidence, Field(discriminator="kind")
-]
+Evidence = Annotated[GaussianEvidence | PosteriorEvidence | LogLikelihoodEvidence, Field(discriminator="kind")]
 
 
 class RejectOption(_Strict):
@@ -199,10 +193,28 @@ def build_policy(document: SourceDocument) -> Policy:
     try:
         return Policy.model_validate(document.data)
     except ValidationError as exc:
+        errors = _most_specific(exc.errors(), document.data)
         diagnostics = [
-            document.locate(_diagnostic_from_pydantic(error, document.data)) for error in exc.errors()
+            document.locate(_diagnostic_from_pydantic(error, document.data), at_key=error["type"] == "extra_forbidden")
+            for error in errors
         ]
         raise PolicySchemaError(_deduplicate(diagnostics)) from None
+
+
+# Errors that only say "this value is not the shape of that other union branch".
+_BRANCH_MISMATCH = {"literal_error", "dict_type", "tuple_type", "float_type", "string_type", "int_type"}
+
+
+def _most_specific(errors: list[Any], data: Mapping[str, Any]) -> list[Any]:
+    """Drop a union-branch mismatch when a deeper error explains the same value (cf. a best match)."""
+    paths = [_data_path(e["loc"], data, e["type"] == "missing") for e in errors]
+
+    def explained(index: int) -> bool:
+        path = paths[index]
+        return any(len(other) > len(path) and other[: len(path)] == path for other in paths)
+
+    return [e for i, e in enumerate(errors) if not (e["type"] in _BRANCH_MISMATCH and explained(i))]
+
 
 _PYDANTIC_CODES = {
     "missing": "missing-key",
@@ -248,7 +260,9 @@ def _data_path(loc: tuple[Any, ...], data: Any, last_is_missing: bool) -> tuple[
     path: list[str | int] = []
     node = data
     for depth, part in enumerate(loc):
-        if (isinstance(node, dict) and isinstance(part, str) and part in node) or (isinstance(node, tuple) and isinstance(part, int) and 0 <= part < len(node)):
+        if (isinstance(node, dict) and isinstance(part, str) and part in node) or (
+            isinstance(node, tuple) and isinstance(part, int) and 0 <= part < len(node)
+        ):
             node = node[part]
         elif not (last_is_missing and depth == len(loc) - 1):
             continue

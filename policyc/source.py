@@ -5,8 +5,8 @@ construct plain Python values from that tree ourselves, so every typing rule is
 ours and stated here (YAML 1.2 core schema, with the YAML 1.1 pitfalls refused):
 
 * mapping keys are always strings, taken from the key's text;
-* ``true``/``false`` are booleans; ``yes``/``no``/``on``/``off``/``y``/``n``
-  unquoted are errors (quote them if they are names);
+* ``true``/``false`` are booleans; ``yes``/``no``/``on``/``off`` unquoted
+  are errors (quote them if they are names);
 * ``1e-3``, ``.5``, ``-2`` are numbers; ``~``/``null``/empty are null;
 * quoted scalars are always strings;
 * sequences become tuples, so the loaded data is immutable in spirit;
@@ -34,7 +34,7 @@ MAX_POLICY_BYTES = 1 << 20  # a policy is a reviewed text file, never megabytes
 
 _NULL = re.compile(r"^(?:~|null|Null|NULL|)$")
 _BOOL = re.compile(r"^(?:true|True|TRUE|false|False|FALSE)$")
-_YAML11_BOOL = re.compile(r"^(?:y|Y|yes|Yes|YES|n|N|no|No|NO|on|On|ON|off|Off|OFF)$")
+_YAML11_BOOL = re.compile(r"^(?:yes|Yes|YES|no|No|NO|on|On|ON|off|Off|OFF)$")
 _INT = re.compile(r"^[-+]?[0-9]+$|^0o[0-7]+$|^0x[0-9a-fA-F]+$")
 _FLOAT = re.compile(
     r"^[-+]?(?:\.[0-9]+|[0-9]+(?:\.[0-9]*)?)(?:[eE][-+]?[0-9]+)?$"
@@ -61,7 +61,10 @@ class SourceDocument:
     def lines(self) -> list[str]:
         return self.text.splitlines()
 
-    def locate(self, diagnostic: Diagnostic) -> Diagnostic:
+    def locate(self, diagnostic: Diagnostic, at_key: bool = False) -> Diagnostic:
+        """Add file, line and column: of the value at the path, or of its key with ``at_key``."""
+        if at_key and diagnostic.path in self.key_positions:
+            return diagnostic.located(self.name, self.key_positions, {})
         return diagnostic.located(self.name, self.positions, self.key_positions)
 
 
@@ -74,13 +77,9 @@ class _StrictLoader(yaml.SafeLoader):
             raise _Refusal("yaml-alias", "aliases (*name) are not allowed in a policy", event.start_mark)
         if isinstance(event, ScalarEvent | CollectionStartEvent):
             if event.anchor is not None:
-                raise _Refusal(
-                    "yaml-anchor", "anchors (&name) are not allowed in a policy", event.start_mark
-                )
+                raise _Refusal("yaml-anchor", "anchors (&name) are not allowed in a policy", event.start_mark)
             if event.tag not in (None, "!"):
-                raise _Refusal(
-                    "yaml-tag", f"explicit tag {event.tag!r} is not allowed in a policy", event.start_mark
-                )
+                raise _Refusal("yaml-tag", f"explicit tag {event.tag!r} is not allowed in a policy", event.start_mark)
         return super().compose_node(parent, index)
 
 
@@ -98,8 +97,10 @@ def load_source(path: str | FilePath) -> SourceDocument:
         size = file.stat().st_size
         if size > MAX_POLICY_BYTES:
             raise _source_error(
-                name, "policy-too-large", f"the file is {size} bytes; a policy may have at most "
-                f"{MAX_POLICY_BYTES} bytes", None
+                name,
+                "policy-too-large",
+                f"the file is {size} bytes; a policy may have at most {MAX_POLICY_BYTES} bytes",
+                None,
             )
         raw = file.read_bytes()
     except OSError as exc:
@@ -128,7 +129,9 @@ def parse_source(text: str, name: str = "<policy>", base_dir: FilePath | None = 
         raise _source_error(name, "policy-empty", "the file holds no policy", Position(1, 1))
     if not isinstance(root, MappingNode):
         raise _source_error(
-            name, "policy-not-a-mapping", "a policy is a mapping of keys (policy:, classes:, ...)",
+            name,
+            "policy-not-a-mapping",
+            "a policy is a mapping of keys (policy:, classes:, ...)",
             _position(root.start_mark),
         )
     builder = _Builder()
@@ -181,7 +184,7 @@ def _scalar(node: ScalarNode) -> Any:
             "yaml-ambiguous-boolean",
             f"{text!r} is a boolean in YAML 1.1 but text in YAML 1.2",
             node.start_mark,
-            f"write true or false, or quote it (\"{text}\") if it is a name",
+            f'write true or false, or quote it ("{text}") if it is a name',
         )
     if _NULL.match(text):
         return None
