@@ -12,7 +12,6 @@ rejecting when min_a R(a|x) > d.
 
 from __future__ import annotations
 
-import hashlib
 from collections import Counter
 from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass
@@ -22,6 +21,7 @@ import numpy as np
 from scipy.optimize import linprog
 
 from policyc.diagnostics import Diagnostic, PolicyCheckError, PolicyError, Severity
+from policyc.hashing import file_sha256
 from policyc.model import GaussianEvidence, Policy, PosteriorEvidence, build_policy
 from policyc.source import SourceDocument, load_source
 
@@ -41,8 +41,6 @@ __all__ = [
 
 PRIOR_SUM_TOLERANCE = 1e-6
 """|Σ P(j) - 1| allowed; within it, compile renormalises (hand-written decimals rarely sum to 1 exactly)."""
-
-_HASH_CHUNK = 1 << 20
 
 
 @dataclass(frozen=True)
@@ -340,7 +338,9 @@ def action_regions(policy: Policy) -> list[ActionRegion] | None:
     tolerance = _margin_tolerance(loss)
     regions = []
     for row in range(loss.shape[0]):
-        margin, posterior = winning_margin(loss, row)
+        # Ties go to the earlier row, so a later identical copy never takes a region from this row.
+        keep = [b for b in range(loss.shape[0]) if b <= row or not np.array_equal(loss[b], loss[row])]
+        margin, posterior = winning_margin(loss[keep], row)
         regions.append(
             ActionRegion(_row_name(policy, row), margin if margin > tolerance else 0.0, tuple(posterior.tolist()))
         )
@@ -444,14 +444,6 @@ def training_data_is_present_and_pinned(policy: Policy, context: CheckContext) -
             ("evidence", "training", "sha256"),
             "if the new data is intended, review it and update the pin",
         )
-
-
-def file_sha256(path: Path) -> str:
-    digest = hashlib.sha256()
-    with path.open("rb") as handle:
-        while chunk := handle.read(_HASH_CHUNK):
-            digest.update(chunk)
-    return digest.hexdigest()
 
 
 def evidence_columns_cover_classes(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:

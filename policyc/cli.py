@@ -4,13 +4,22 @@ from __future__ import annotations
 
 import json
 import sys
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
 from pathlib import Path
+from typing import NoReturn
 
 import click
 
 from policyc import __version__
+from policyc.batch import decide_file
 from policyc.check import CheckReport, action_regions, check_file
+from policyc.compile import compile_policy
 from policyc.diagnostics import PolicyError, render_json, render_text
+from policyc.emit import write_artefact, write_module
+from policyc.inspection import inspection, render_inspection
+from policyc.io import DataError, count_rows
+from policyc.runtime import ArtefactError, InputError, Rule, load_rule
 from policyc.schemas import policy_schema_text
 from policyc.tables import format_matrix
 
@@ -32,7 +41,7 @@ def main() -> None:
     pass
 
 
-def _fail(error: PolicyError) -> None:
+def _fail(error: PolicyError) -> NoReturn:
     click.echo(render_text(error.diagnostics), err=True)
     sys.exit(1)
 
@@ -118,6 +127,103 @@ def _echo_policy_tables(report: CheckReport) -> None:
 def schema() -> None:
     """Print the JSON Schema of the policy language."""
     click.echo(policy_schema_text(), nl=False)
+
+
+@contextmanager
+def _progress(label: str, total: int | None) -> Iterator[Callable[[int], None] | None]:
+    """A progress bar on a terminal (stderr); nothing in CI logs or pipes."""
+    if not sys.stderr.isatty():
+        yield None
+        return
+    if total is not None:
+        with click.progressbar(length=total, label=label, file=sys.stderr) as bar:
+            yield bar.update
+        return
+    done = 0
+
+    def report(rows: int) -> None:
+        nonlocal done
+        done += rows
+        click.echo(f"\r{label}: {done:,} rows", nl=False, err=True)
+
+    yield report
+    click.echo("", err=True)
+
+
+@main.command(name="compile", epilog=CAUTION)
+@click.argument("policy", type=click.Path(dir_okay=False, path_type=Path))
+@click.option(
+    "-o",
+    "--output",
+    "rule_file",
+    required=True,
+    type=click.Path(dir_okay=False, path_type=Path),
+    help="Where to write the rule artefact.",
+)
+@click.option(
+    "--emit-python",
+    "module_file",
+    type=click.Path(dir_okay=False, path_type=Path),
+    help="Also write a standalone NumPy module with the same decisions.",
+)
+def compile_command(policy: Path, rule_file: Path, module_file: Path | None) -> None:
+    """Check POLICY, fit its evidence model and write the frozen rule."""
+    try:
+        with _progress("fitting", None) as progress:
+            compiled = compile_policy(policy, progress)
+    except PolicyError as error:
+        _fail(error)
+    if compiled.diagnostics:
+        click.echo(render_text(compiled.diagnostics), err=True)
+    digest = write_artefact(compiled.rule, rule_file)
+    click.echo(f"compiled {compiled.policy.policy} r{compiled.policy.revision} -> {rule_file} (sha256 {digest})")
+    if module_file is not None:
+        write_module(compiled.rule, module_file)
+        click.echo(f"standalone module -> {module_file}")
+
+
+def _load(rule_file: Path) -> Rule:
+    try:
+        return load_rule(rule_file)
+    except ArtefactError as error:
+        raise click.ClickException(str(error)) from None
+
+
+@main.command(epilog=CAUTION)
+@click.argument("rule_file", type=click.Path(dir_okay=False, path_type=Path))
+@click.argument("data", type=click.Path(dir_okay=False, path_type=Path))
+@click.option(
+    "-o",
+    "--output",
+    required=True,
+    type=click.Path(dir_okay=False, path_type=Path),
+    help="Output file, CSV or Parquet by its suffix.",
+)
+@click.option("--explain", is_flag=True, help="Also write posteriors, risks, runner-up action and margin.")
+def decide(rule_file: Path, data: Path, output: Path, explain: bool) -> None:
+    """Decide every row of DATA (CSV or Parquet) with RULE_FILE; add an `action` column."""
+    rule = _load(rule_file)
+    try:
+        with _progress("deciding", count_rows(data) if data.is_file() else None) as progress:
+            counts = decide_file(rule, data, output, explain, progress)
+    except (DataError, InputError) as error:
+        raise click.ClickException(str(error)) from None
+    total = sum(counts.values())
+    summary = ", ".join(f"{name} {n} ({n / total:.1%})" for name, n in counts.items())
+    click.echo(f"{total} rows -> {output}: {summary}")
+
+
+@main.command(epilog=CAUTION)
+@click.argument("rule_file", type=click.Path(dir_okay=False, path_type=Path))
+@click.option("--format", "output_format", type=click.Choice(["text", "json"]), default="text", show_default=True)
+def inspect(rule_file: Path, output_format: str) -> None:
+    """Show a rule's manifest, hashes, names, priors, loss table and (two classes) posterior thresholds."""
+    rule = _load(rule_file)
+    report = inspection(rule)
+    if output_format == "json":
+        click.echo(_json_dump(report))
+    else:
+        click.echo(render_inspection(rule, report))
 
 
 def _json_dump(value: object) -> str:

@@ -1,0 +1,25 @@
+"""What every evidence kind produces for the compiler."""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+__all__ = ["FittedEvidence", "Progress"]
+
+Progress = Callable[[int], None]
+"""Called with the number of rows just processed."""
+
+
+@dataclass(frozen=True)
+class FittedEvidence:
+    """What the compiler freezes: input columns, kernel arrays and a description for the manifest."""
+
+    features: tuple[str, ...]
+    params: dict[str, np.ndarray]
+    description: dict[str, Any]
+    training_counts: dict[str, int] | None = None
+    training_sha256: str | None = None

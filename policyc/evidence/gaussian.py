@@ -1,0 +1,308 @@
+"""Class-conditional Gaussian evidence: streaming sufficient statistics, fit, frozen kernel parameters.
+
+Estimators (docs/math.md has the derivations):
+
+* mean μ_k and covariance Σ_k by maximum likelihood: the divisor is the row count n_k;
+* ``tied``: one pooled covariance Σ = Σ_k S_k / n, classes weighted by their counts
+  (S_k is the centred scatter of class k);
+* ``diagonal``: the diagonal of the per-class ML covariance;
+* shrinkage toward the scaled identity on the raw features,
+  Σ* = (1 - α) Σ + α (tr Σ / d) I, with α fixed or, for ``auto``, Ledoit & Wolf (2004).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Iterable, Iterator, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+from scipy.linalg import solve_triangular
+
+from policyc.evidence.base import FittedEvidence, Progress
+from policyc.hashing import file_sha256
+from policyc.io import read_feature_batches
+from policyc.model import GaussianEvidence, Policy
+
+__all__ = [
+    "CONDITION_LIMIT",
+    "FitProblem",
+    "GaussianFit",
+    "Moments",
+    "class_codes",
+    "fit",
+    "fit_covariances",
+    "kernel_params",
+    "ledoit_wolf_intensity",
+    "moments_by_class",
+    "shrink",
+]
+
+CONDITION_LIMIT = 1e12
+"""Largest accepted eigenvalue ratio of a covariance; beyond it float64 whitening loses most digits
+(common practice, no source)."""
+
+
+class FitProblem(ValueError):
+    """The data cannot support the requested model; ``code`` is a diagnostic code."""
+
+    def __init__(self, code: str, message: str, hint: str | None = None) -> None:
+        super().__init__(message)
+        self.code, self.message, self.hint = code, message, hint
+
+
+@dataclass(frozen=True)
+class Moments:
+    """Count, mean and centred scatter Σ (x - mean)(x - mean)ᵀ of a set of rows."""
+
+    count: int
+    mean: np.ndarray
+    scatter: np.ndarray
+
+    @classmethod
+    def empty(cls, n_features: int) -> Moments:
+        return cls(0, np.zeros(n_features), np.zeros((n_features, n_features)))
+
+    @classmethod
+    def of(cls, rows: np.ndarray) -> Moments:
+        if rows.shape[0] == 0:
+            return cls.empty(rows.shape[1])
+        mean = rows.mean(axis=0)
+        centred = rows - mean
+        return cls(rows.shape[0], mean, centred.T @ centred)
+
+    def merge(self, other: Moments) -> Moments:
+        """Combine two disjoint sets (Chan, Golub & LeVeque 1979, pairwise update).
+
+        n = n_a + n_b;  δ = m_b - m_a;  m = m_a + δ n_b / n;  S = S_a + S_b + δδᵀ n_a n_b / n.
+        """
+        if other.count == 0:
+            return self
+        if self.count == 0:
+            return other
+        total = self.count + other.count
+        delta = other.mean - self.mean
+        mean = self.mean + delta * (other.count / total)
+        scatter = self.scatter + other.scatter + np.outer(delta, delta) * (self.count * other.count / total)
+        return Moments(total, mean, scatter)
+
+    @property
+    def covariance(self) -> np.ndarray:
+        """Maximum-likelihood covariance S / n."""
+        return self.scatter / self.count
+
+
+def class_codes(labels: np.ndarray, classes: Sequence[str], first_row: int, ignore_unknown: bool) -> np.ndarray:
+    """Class index per row (-1 for a skipped unknown label); raise FitProblem on an unknown label."""
+    values, inverse = np.unique(labels, return_inverse=True)
+    lookup = {name: index for index, name in enumerate(classes)}
+    mapped = np.array([lookup.get(str(v), -1) for v in values], dtype=np.int64)
+    codes = mapped[inverse.reshape(-1)]
+    if not ignore_unknown and (codes < 0).any():
+        row = int(np.flatnonzero(codes < 0)[0])
+        raise FitProblem(
+            "unknown-label",
+            f"row {first_row + row} has label {str(labels[row])!r}, which is not a class",
+            "fix the data, add the class, or set ignore_unknown_labels: true",
+        )
+    return codes
+
+
+Batch = tuple[np.ndarray, np.ndarray]  # (features (n, d), class codes (n,))
+
+
+def _split_by_class(rows: np.ndarray, codes: np.ndarray, n_classes: int) -> Iterator[tuple[int, np.ndarray]]:
+    keep = codes >= 0
+    rows, codes = rows[keep], codes[keep]
+    order = np.argsort(codes, kind="stable")
+    counts = np.bincount(codes, minlength=n_classes)
+    for k, block in enumerate(np.split(rows[order], np.cumsum(counts)[:-1])):
+        if block.shape[0]:
+            yield k, block
+
+
+def moments_by_class(batches: Iterable[Batch], n_classes: int, n_features: int) -> list[Moments]:
+    """One pass: per-class moments, merged batch by batch. Memory O(K d²) whatever the row count."""
+    moments = [Moments.empty(n_features) for _ in range(n_classes)]
+    for rows, codes in batches:
+        for k, block in _split_by_class(rows, codes, n_classes):
+            moments[k] = moments[k].merge(Moments.of(block))
+    return moments
+
+
+def fourth_moments_by_class(batches: Iterable[Batch], means: np.ndarray) -> np.ndarray:
+    """Second pass for Ledoit-Wolf: Σ_rows ‖x - μ_k‖⁴ per class k, about the final class means."""
+    n_classes = means.shape[0]
+    sums = np.zeros(n_classes)
+    for rows, codes in batches:
+        for k, block in _split_by_class(rows, codes, n_classes):
+            squared_norms = np.einsum("ij,ij->i", block - means[k], block - means[k])
+            sums[k] += float(squared_norms @ squared_norms)
+    return sums
+
+
+def ledoit_wolf_intensity(covariance: np.ndarray, count: int, fourth_moment_sum: float) -> float:
+    """Shrinkage intensity α = b²/d² of Ledoit & Wolf (2004), J. Multivariate Analysis 88(2), toward (tr S / p) I.
+
+    With S the ML covariance of centred rows x_r and ⟨A, B⟩ = tr(ABᵀ)/p:
+    m = tr S / p;  d² = ‖S - mI‖²;  b̄² = n⁻² Σ_r ‖x_r x_rᵀ - S‖² = n⁻² (Σ_r ‖x_r‖⁴ - n ‖S‖²_F) / p;
+    b² = min(b̄², d²). The identity Σ_r x_rᵀ S x_r = n ‖S‖²_F gives b̄² from the fourth-moment sum.
+    """
+    p = covariance.shape[0]
+    scale = np.trace(covariance) / p
+    d2 = float(np.sum((covariance - scale * np.eye(p)) ** 2)) / p
+    if d2 <= 0.0:
+        return 0.0
+    b2_bar = (fourth_moment_sum - count * float(np.sum(covariance**2))) / (count**2 * p)
+    return min(max(b2_bar, 0.0), d2) / d2
+
+
+def shrink(covariance: np.ndarray, intensity: float) -> np.ndarray:
+    """Σ* = (1 - α) Σ + α (tr Σ / p) I  (same target as Ledoit & Wolf 2004)."""
+    p = covariance.shape[0]
+    return (1.0 - intensity) * covariance + intensity * (np.trace(covariance) / p) * np.eye(p)
+
+
+@dataclass(frozen=True)
+class GaussianFit:
+    means: np.ndarray  # (K, d)
+    covariances: np.ndarray  # (K, d, d)
+    intensities: tuple[float, ...]  # shrinkage intensity per covariance actually used
+    counts: tuple[int, ...]
+
+
+def fit_covariances(
+    moments: Sequence[Moments],
+    classes: Sequence[str],
+    covariance: str,
+    shrinkage: str | float,
+    fourth_moments: Callable[[np.ndarray], np.ndarray] | None,
+) -> GaussianFit:
+    """ML covariances of the requested structure and shrinkage; raise FitProblem naming the class.
+
+    ``fourth_moments(means)`` runs the second pass; it is called only for ``shrinkage: auto``.
+    """
+    _require_rows(moments, classes, covariance, shrinkage)
+    means = np.array([m.mean for m in moments])
+    counts = tuple(m.count for m in moments)
+    fourth = fourth_moments(means) if shrinkage == "auto" and fourth_moments is not None else None
+    if covariance == "tied":
+        pooled = Moments(sum(counts), np.zeros(means.shape[1]), sum(m.scatter for m in moments))
+        base = [pooled.covariance]
+        fourth_sums = [float(fourth.sum())] if fourth is not None else [0.0]
+        base_counts = [pooled.count]
+    else:
+        base = [m.covariance for m in moments]
+        fourth_sums = list(fourth) if fourth is not None else [0.0] * len(moments)
+        base_counts = list(counts)
+    intensities = [
+        ledoit_wolf_intensity(S, n, f) if shrinkage == "auto" else (0.0 if shrinkage == "none" else float(shrinkage))
+        for S, n, f in zip(base, base_counts, fourth_sums, strict=True)
+    ]
+    shrunk = [shrink(S, a) for S, a in zip(base, intensities, strict=True)]
+    if covariance == "diagonal":
+        shrunk = [np.diag(np.diag(S)) for S in shrunk]
+    if covariance == "tied":
+        shrunk = shrunk * len(moments)
+    names = ["pooled (tied)"] if covariance == "tied" else list(classes)
+    for name, S in zip(names, shrunk, strict=False):
+        _require_well_conditioned(name, S)
+    return GaussianFit(means, np.array(shrunk), tuple(intensities), counts)
+
+
+def _require_rows(moments: Sequence[Moments], classes: Sequence[str], covariance: str, shrinkage: str | float) -> None:
+    n_features = moments[0].mean.shape[0]
+    for name, m in zip(classes, moments, strict=True):
+        if m.count == 0:
+            raise FitProblem("class-without-rows", f"class {name!r} has no training rows")
+        needed = n_features + 1 if covariance == "full" and shrinkage == "none" else 2
+        if m.count < needed:
+            raise FitProblem(
+                "too-few-rows",
+                f"class {name!r} has {m.count} training rows; a {covariance} covariance of {n_features} "
+                f"features needs at least {needed}",
+                "add rows, use shrinkage: auto, or covariance: diagonal or tied",
+            )
+
+
+def _require_well_conditioned(name: str, covariance: np.ndarray) -> None:
+    eigenvalues = np.linalg.eigvalsh(covariance)
+    smallest, largest = float(eigenvalues[0]), float(eigenvalues[-1])
+    if largest <= 0.0 or smallest <= largest / CONDITION_LIMIT:
+        ratio = "infinite" if smallest <= 0.0 else f"{largest / smallest:.3g}"
+        raise FitProblem(
+            "singular-covariance",
+            f"the covariance of {name!r} is singular or ill-conditioned (eigenvalue ratio {ratio}, "
+            f"limit {CONDITION_LIMIT:g}); some feature is constant or a combination of others",
+            "use shrinkage: auto (or a number in (0, 1]), covariance: diagonal with shrinkage, or drop the feature",
+        )
+
+
+def kernel_params(fit: GaussianFit) -> dict[str, np.ndarray]:
+    """Arrays for the runtime kernel: stacked whitening factors L_k⁻¹, never an inverse of Σ_k itself.
+
+    Σ_k = L_k L_kᵀ (Cholesky); W_k = L_k⁻¹ by a triangular solve; log normaliser
+    -Σ_i ln (L_k)_ii - (d/2) ln 2π = -½ ln det Σ_k - (d/2) ln 2π.
+    """
+    n_classes, n_features = fit.means.shape
+    centre = fit.means.mean(axis=0)
+    whitening = np.empty((n_classes * n_features, n_features))
+    whitened_means = np.empty(n_classes * n_features)
+    log_normalisers = np.empty(n_classes)
+    identity = np.eye(n_features)
+    for k in range(n_classes):
+        factor = np.linalg.cholesky(fit.covariances[k])
+        inverse_factor = solve_triangular(factor, identity, lower=True)
+        block = slice(k * n_features, (k + 1) * n_features)
+        whitening[block] = inverse_factor
+        whitened_means[block] = inverse_factor @ (fit.means[k] - centre)
+        log_normalisers[k] = -np.sum(np.log(np.diag(factor))) - 0.5 * n_features * np.log(2.0 * np.pi)
+    return {
+        "centre": centre,
+        "whitening": whitening,
+        "whitened_means": whitened_means,
+        "log_normalisers": log_normalisers,
+    }
+
+
+def fit(
+    policy: Policy, evidence: GaussianEvidence, base_dir: Path | None, progress: Progress | None = None
+) -> FittedEvidence:
+    """Fit class-conditional Gaussians from the training file, streaming it in batches."""
+    path = Path(evidence.training.data)
+    if base_dir is not None and not path.is_absolute():
+        path = base_dir / path
+    classes = policy.classes
+    n_features = len(evidence.features)
+
+    def batches() -> Iterator[Batch]:
+        for batch in read_feature_batches(path, evidence.features, evidence.training.label):
+            assert batch.labels is not None
+            bad = ~np.isfinite(batch.features).all(axis=1)
+            if bad.any():
+                row = batch.first_row + int(np.flatnonzero(bad)[0])
+                raise FitProblem("training-value-not-finite", f"{path}: row {row} has a NaN or infinite feature value")
+            codes = class_codes(batch.labels, classes, batch.first_row, evidence.training.ignore_unknown_labels)
+            if progress is not None:
+                progress(batch.features.shape[0])
+            yield batch.features, codes
+
+    moments = moments_by_class(batches(), len(classes), n_features)
+    result = fit_covariances(
+        moments,
+        classes,
+        evidence.covariance,
+        evidence.shrinkage,
+        lambda means: fourth_moments_by_class(batches(), means),
+    )
+    counts = dict(zip(classes, result.counts, strict=True))
+    intensity_names = ["pooled"] if evidence.covariance == "tied" else list(classes)
+    description = {
+        "kind": "gaussian",
+        "covariance": evidence.covariance,
+        "shrinkage": evidence.shrinkage,
+        "shrinkage_intensity": dict(zip(intensity_names, result.intensities, strict=True)),
+        "estimator": "maximum likelihood (divisor n); tied pools class scatter weighted by counts",
+        "training_label": evidence.training.label,
+    }
+    return FittedEvidence(tuple(evidence.features), kernel_params(result), description, counts, file_sha256(path))

@@ -1,0 +1,233 @@
+"""Tabular input and output in record batches (pyarrow): CSV and Parquet.
+
+Nothing here loads a whole file: readers yield batches of at most
+``batch_rows`` rows, so memory stays bounded whatever the file size.
+Errors name the file, the column and the 1-based data row (the header is
+not counted; in a CSV file, data row r sits on line r + 1).
+"""
+
+from __future__ import annotations
+
+import re
+from collections.abc import Callable, Iterator, Sequence
+from contextlib import contextmanager
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.csv as pacsv
+import pyarrow.parquet as pq
+
+from policyc.atomic import atomic_path
+
+__all__ = [
+    "DEFAULT_BATCH_ROWS",
+    "DataError",
+    "FeatureBatch",
+    "TableWriter",
+    "count_rows",
+    "data_format",
+    "read_feature_batches",
+    "read_table_batches",
+]
+
+DEFAULT_BATCH_ROWS = 65_536
+
+
+class DataError(ValueError):
+    """A data file cannot be used as asked; the message names the file, column and row."""
+
+
+def data_format(path: Path) -> str:
+    suffix = path.suffix.lower()
+    if suffix in (".csv", ".txt"):
+        return "csv"
+    if suffix in (".parquet", ".pq"):
+        return "parquet"
+    raise DataError(f"{path}: unknown data format {suffix!r}; use .csv or .parquet")
+
+
+@dataclass(frozen=True)
+class FeatureBatch:
+    """One batch of rows: features as float64 (n, d), labels as text (or None), and the first row number."""
+
+    features: np.ndarray
+    labels: np.ndarray | None
+    first_row: int
+
+
+def _csv_blocks(path: Path, columns: Sequence[str] | None, types: dict[str, pa.DataType], batch_rows: int):
+    read_options = pacsv.ReadOptions(block_size=max(1 << 16, batch_rows * 64))
+    convert = pacsv.ConvertOptions(
+        include_columns=list(columns) if columns is not None else None,
+        column_types=types,
+        strings_can_be_null=False,
+    )
+    return pacsv.open_csv(path, read_options=read_options, convert_options=convert)
+
+
+_CSV_CONVERSION = re.compile(r"In CSV column #(\d+): .*CSV conversion error to (\w+): invalid value '(.*)'")
+
+
+def read_table_batches(
+    path: Path,
+    columns: Sequence[str] | None = None,
+    batch_rows: int = DEFAULT_BATCH_ROWS,
+    numeric: Sequence[str] = (),
+    text: Sequence[str] = (),
+) -> Iterator[pa.RecordBatch]:
+    """Yield record batches of the chosen columns (all when None), each at most ``batch_rows`` rows.
+
+    ``numeric`` columns are read as float64 and ``text`` columns as strings.
+    """
+    fmt = data_format(path)
+    if not path.is_file():
+        raise DataError(f"{path}: no such file")
+    _require_columns(path, fmt, columns)
+    if fmt == "parquet":
+        yield from _parquet_batches(path, columns, batch_rows, numeric, text)
+    else:
+        types = {name: pa.float64() for name in numeric} | {name: pa.string() for name in text}
+        yield from _csv_batches(path, columns, types, batch_rows)
+
+
+def _csv_batches(
+    path: Path, columns: Sequence[str] | None, types: dict[str, pa.DataType], batch_rows: int
+) -> Iterator[pa.RecordBatch]:
+    header = _csv_header(path)
+    try:
+        for block in _csv_blocks(path, columns, types, batch_rows):
+            for start in range(0, block.num_rows, batch_rows):
+                yield block.slice(start, batch_rows)
+    except pa.ArrowInvalid as exc:
+        raise DataError(_explain_csv_error(path, header, str(exc))) from None
+
+
+def _explain_csv_error(path: Path, header: list[str], message: str) -> str:
+    match = _CSV_CONVERSION.search(message)
+    if match is None:
+        return f"{path}: {message.splitlines()[0]}"
+    column_index, _, value = match.groups()
+    column = header[int(column_index)] if int(column_index) < len(header) else f"#{column_index}"
+    row = _first_row_holding(path, column, value)
+    where = f", row {row} (line {row + 1})" if row is not None else ""
+    return f"{path}: column {column!r}{where}: {value!r} is not a number"
+
+
+def _first_row_holding(path: Path, column: str, text: str) -> int | None:
+    """Re-read one column as text to find the 1-based data row holding ``text`` (error path only)."""
+    reader = _csv_blocks(path, [column], {column: pa.string()}, DEFAULT_BATCH_ROWS)
+    rows_before = 0
+    for block in reader:
+        matches = np.flatnonzero(pc.equal(block.column(0), text).to_numpy(zero_copy_only=False))
+        if matches.size:
+            return rows_before + int(matches[0]) + 1
+        rows_before += block.num_rows
+    return None
+
+
+def _csv_header(path: Path) -> list[str]:
+    try:
+        first = pacsv.open_csv(path, read_options=pacsv.ReadOptions(block_size=1 << 16))
+    except pa.ArrowInvalid as exc:
+        raise DataError(f"{path}: cannot read as CSV: {str(exc).splitlines()[0]}") from None
+    return list(first.schema.names)
+
+
+def _parquet_batches(
+    path: Path, columns: Sequence[str] | None, batch_rows: int, numeric: Sequence[str], text: Sequence[str]
+) -> Iterator[pa.RecordBatch]:
+    handle = pq.ParquetFile(path)
+    rows_before = 0
+    for batch in handle.iter_batches(batch_size=batch_rows, columns=list(columns) if columns is not None else None):
+        arrays = []
+        for name, array in zip(batch.schema.names, batch.columns, strict=True):
+            if name in numeric:
+                array = _as_float(path, name, array, rows_before)
+            elif name in text:
+                array = pc.cast(array, pa.string())
+            arrays.append(array)
+        yield pa.RecordBatch.from_arrays(arrays, names=batch.schema.names)
+        rows_before += batch.num_rows
+
+
+def _as_float(path: Path, name: str, array: pa.Array, rows_before: int) -> pa.Array:
+    if pa.types.is_floating(array.type) or pa.types.is_integer(array.type) or pa.types.is_decimal(array.type):
+        return pc.cast(array, pa.float64())
+    raise DataError(f"{path}: column {name!r} has type {array.type}, not a number (row {rows_before + 1} onwards)")
+
+
+def _require_columns(path: Path, fmt: str, columns: Sequence[str] | None) -> None:
+    if columns is None:
+        return
+    names = pq.read_schema(path).names if fmt == "parquet" else _csv_header(path)
+    missing = [c for c in columns if c not in names]
+    if missing:
+        raise DataError(f"{path}: missing column(s) {', '.join(map(repr, missing))}; the file has {names}")
+
+
+def count_rows(path: Path) -> int | None:
+    """Row count when it is cheap to know (Parquet metadata), else None."""
+    if data_format(path) == "parquet" and path.is_file():
+        return int(pq.ParquetFile(path).metadata.num_rows)
+    return None
+
+
+def read_feature_batches(
+    path: Path, features: Sequence[str], label: str | None = None, batch_rows: int = DEFAULT_BATCH_ROWS
+) -> Iterator[FeatureBatch]:
+    """Yield features as float64 (n, d) arrays in ``features`` order, with labels as text when asked.
+
+    Missing values (empty CSV cells, Parquet nulls) are errors naming the column and row;
+    NaN and infinity pass through for the caller to judge.
+    """
+    columns = [*features, *([label] if label is not None else [])]
+    first_row = 1
+    for batch in read_table_batches(path, columns, batch_rows, numeric=features, text=[label] if label else []):
+        matrix = batch_to_matrix(path, batch, features, first_row)
+        labels = None
+        if label is not None:
+            label_array = batch.column(columns.index(label))
+            _refuse_nulls(path, label, label_array, first_row)
+            labels = label_array.to_numpy(zero_copy_only=False).astype(str)
+        yield FeatureBatch(matrix, labels, first_row)
+        first_row += batch.num_rows
+
+
+def batch_to_matrix(path: Path, batch: pa.RecordBatch, features: Sequence[str], first_row: int) -> np.ndarray:
+    """Stack the feature columns of a batch into a C-ordered float64 (n, d) array."""
+    matrix = np.empty((batch.num_rows, len(features)), dtype=np.float64)
+    names = batch.schema.names
+    for j, name in enumerate(features):
+        column = batch.column(names.index(name))
+        _refuse_nulls(path, name, column, first_row)
+        matrix[:, j] = column.to_numpy(zero_copy_only=False)
+    return matrix
+
+
+def _refuse_nulls(path: Path, name: str, column: pa.Array, first_row: int) -> None:
+    if column.null_count:
+        offset = int(np.flatnonzero(column.is_null().to_numpy(zero_copy_only=False))[0])
+        row = first_row + offset
+        raise DataError(f"{path}: column {name!r}, row {row}: missing value")
+
+
+class TableWriter:
+    """Write record batches to CSV or Parquet, atomically: the target appears only when complete."""
+
+    def __init__(self, path: Path, schema: pa.Schema) -> None:
+        self.path = path
+        self.format = data_format(path)
+        self.schema = schema
+
+    @contextmanager
+    def open(self) -> Iterator[Callable[[pa.RecordBatch], None]]:
+        with atomic_path(self.path) as temporary:
+            if self.format == "parquet":
+                with pq.ParquetWriter(temporary, self.schema) as writer:
+                    yield writer.write_batch
+            else:
+                with pacsv.CSVWriter(temporary, self.schema) as writer:
+                    yield writer.write_batch

@@ -1,0 +1,154 @@
+"""Decision kernels: evidence -> log-likelihoods -> posteriors -> conditional risks -> action.
+
+This file imports numpy only and nothing else, not even the rest of the
+runtime: ``policyc compile --emit-python`` copies it verbatim into the
+standalone module, so the runtime and the module run the same code and give
+bit-identical results. The full derivation is in docs/math.md.
+
+Parameters arrive as a mapping of name to float64 array:
+
+* every rule: ``log_priors`` (K,), ``loss`` (A, K) with the reject row, if any, last;
+* gaussian: ``centre`` (d,), ``whitening`` (K*d, d) stacking L_k^-1 for Σ_k = L_k L_k^T,
+  ``whitened_means`` (K*d,) stacking L_k^-1 (μ_k - centre), ``log_normalisers`` (K,);
+* posterior: ``log_trained_priors`` (K,), ``sum_tolerance`` (), ``renormalise`` () as 0.0 or 1.0;
+* log-likelihood: nothing more.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+CHUNK_ROWS = 4096
+"""Rows evaluated at once: bounds the (rows, K*d) work array whatever the input size."""
+
+
+class InputError(ValueError):
+    """The input array cannot be decided on: wrong shape or type, or invalid rows under invalid_input: error."""
+
+
+def prepare_input(X: object, n_features: int) -> np.ndarray:
+    """Return ``X`` as a C-ordered float64 array of shape (n, n_features), or raise InputError."""
+    array = np.asarray(X)
+    if array.dtype.kind not in "fiub":
+        raise InputError(f"expected a numeric array, got dtype {array.dtype}")
+    if array.ndim != 2:
+        raise InputError(f"expected a 2-D array of shape (n, {n_features}), got {array.ndim}-D")
+    if array.shape[1] != n_features:
+        raise InputError(f"expected {n_features} feature columns, got {array.shape[1]}")
+    if array.shape[0] == 0:
+        raise InputError("the input has no rows")
+    return np.ascontiguousarray(array, dtype=np.float64)
+
+
+def evaluate(
+    X: object, evidence: str, params: dict[str, np.ndarray], n_features: int, invalid_input: str
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Posteriors, risks and validity for raw input; raise InputError on invalid rows under "error"."""
+    prepared = prepare_input(X, n_features)
+    posteriors, risks, valid = posteriors_and_risks(prepared, evidence, params)
+    if invalid_input == "error" and not valid.all():
+        raise InputError(invalid_rows_message(valid))
+    return posteriors, risks, valid
+
+
+def gaussian_log_likelihoods(X: np.ndarray, params: dict[str, np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
+    """ln N(x; μ_k, Σ_k) for every class, and which rows could be evaluated.
+
+    ln N(x; μ_k, Σ_k) = -½‖L_k⁻¹(x - μ_k)‖² - Σ_i ln (L_k)_ii - (d/2) ln 2π  (Σ_k = L_k L_kᵀ);
+    log_normalisers holds the last two terms. All classes share one matrix product.
+    """
+    whitening = params["whitening"]
+    n_classes = params["log_normalisers"].shape[0]
+    n_features = whitening.shape[1]
+    # z = L_k⁻¹(x - c) - L_k⁻¹(μ_k - c) = L_k⁻¹(x - μ_k), with c a common centre against cancellation
+    z = (X - params["centre"]) @ whitening.T - params["whitened_means"]
+    squared = np.einsum("nkd,nkd->nk", z.reshape(-1, n_classes, n_features), z.reshape(-1, n_classes, n_features))
+    log_likelihoods = params["log_normalisers"] - 0.5 * squared
+    return log_likelihoods, np.isfinite(X).all(axis=1)
+
+
+def posterior_log_likelihoods(X: np.ndarray, params: dict[str, np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
+    """Upstream posteriors as log-likelihoods up to a per-row constant, and which rows are valid.
+
+    p(x|k) ∝ p(k|x) / π_k with π the priors the upstream model was trained under, so
+    ln p(k|x) - ln π_k + ln π̃_k gives the posterior under new priors π̃ after normalising
+    (Saerens, Latinne & Decaestecker 2002, Neural Computation 14(1), eq. for known new priors).
+    """
+    sums = X.sum(axis=1)
+    finite = np.isfinite(X).all(axis=1)
+    in_range = ((X >= 0.0) & (X <= 1.0)).all(axis=1)
+    if params["renormalise"] > 0.0:
+        X = X / np.where(sums > 0.0, sums, 1.0)[:, None]
+        valid = finite & (X >= 0.0).all(axis=1) & (sums > 0.0)
+    else:
+        valid = finite & in_range & (np.abs(sums - 1.0) <= params["sum_tolerance"])
+    with np.errstate(divide="ignore", invalid="ignore"):
+        log_likelihoods = np.log(X) - params["log_trained_priors"]
+    return log_likelihoods, valid
+
+
+def supplied_log_likelihoods(X: np.ndarray, params: dict[str, np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
+    """Per-class ln p(x|k) computed elsewhere; +inf is invalid, -inf means impossible."""
+    valid = ~np.isnan(X).any(axis=1) & ~np.isposinf(X).any(axis=1)
+    return X, valid
+
+
+LOG_LIKELIHOODS = {
+    "gaussian": gaussian_log_likelihoods,
+    "posterior": posterior_log_likelihoods,
+    "log-likelihood": supplied_log_likelihoods,
+}
+
+
+def posteriors_and_risks(
+    X: np.ndarray, evidence: str, params: dict[str, np.ndarray]
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Posteriors (n, K), conditional risks (n, A) and a validity mask (n,) for prepared input.
+
+    Rows that are not valid hold NaN. Work proceeds in chunks of CHUNK_ROWS rows.
+    """
+    n_rows = X.shape[0]
+    n_classes = params["log_priors"].shape[0]
+    posteriors = np.empty((n_rows, n_classes))
+    risks = np.empty((n_rows, params["loss"].shape[0]))
+    valid = np.empty(n_rows, dtype=bool)
+    for start in range(0, n_rows, CHUNK_ROWS):
+        rows = slice(start, start + CHUNK_ROWS)
+        posteriors[rows], risks[rows], valid[rows] = _chunk(X[rows], evidence, params)
+    return posteriors, risks, valid
+
+
+def _chunk(X: np.ndarray, evidence: str, params: dict[str, np.ndarray]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    log_likelihoods, valid = LOG_LIKELIHOODS[evidence](X, params)
+    # ln P(k|x) = ln p(x|k) + ln P(k) - logsumexp_j(ln p(x|j) + ln P(j)); subtract the row max first
+    with np.errstate(invalid="ignore"):
+        joint = log_likelihoods + params["log_priors"]
+        top = joint.max(axis=1, keepdims=True)
+        valid = valid & np.isfinite(top[:, 0])
+        joint = np.where(valid[:, None], joint - top, 0.0)
+    unnormalised = np.exp(joint)
+    posteriors = unnormalised / unnormalised.sum(axis=1, keepdims=True)
+    # R(a|x) = Σ_k λ(a|k) P(k|x)   (Duda, Hart & Stork 2001, §2.2; Fukunaga 1990, eq. 3.19)
+    risks = posteriors @ params["loss"].T
+    posteriors[~valid] = np.nan
+    risks[~valid] = np.nan
+    return posteriors, risks, valid
+
+
+def choose(risks: np.ndarray, valid: np.ndarray, invalid_action: int) -> np.ndarray:
+    """Index of the minimum-risk action per row; ties go to the earlier action.
+
+    With the reject row last, argmin takes an action whenever min_a R(a|x) <= d and
+    rejects when min_a R(a|x) > d (Chow 1970). Invalid rows get ``invalid_action``.
+    """
+    chosen = np.argmin(np.where(valid[:, None], risks, 0.0), axis=1)
+    return np.where(valid, chosen, invalid_action)
+
+
+def invalid_rows_message(valid: np.ndarray, first_row: int = 0) -> str:
+    """Name the invalid rows, numbered from ``first_row`` (0 for array indices)."""
+    rows = np.flatnonzero(~valid) + first_row
+    shown = ", ".join(str(r) for r in rows[:10])
+    more = f" and {rows.size - 10} more" if rows.size > 10 else ""
+    numbering = "0-based" if first_row == 0 else f"{first_row}-based"
+    return f"invalid input in row(s) {shown}{more} ({numbering}): NaN, infinity or impossible evidence"

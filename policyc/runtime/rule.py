@@ -1,0 +1,174 @@
+"""A compiled decision rule: immutable, numpy-only, safe to share between threads."""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Mapping
+from dataclasses import dataclass
+from types import MappingProxyType
+from typing import Any
+
+import numpy as np
+
+from policyc.runtime import kernel
+from policyc.runtime.artefact import ArtefactError, decode_rule
+
+__all__ = ["Explanation", "Rule", "load_rule"]
+
+_REQUIRED = {
+    "gaussian": ("centre", "whitening", "whitened_means", "log_normalisers"),
+    "posterior": ("log_trained_priors", "sum_tolerance", "renormalise"),
+    "log-likelihood": (),
+}
+
+
+@dataclass(frozen=True)
+class Explanation:
+    """Per row: posteriors (n, K), risks (n, A), chosen and runner-up action indices, the risk margin,
+    and whether the row was valid input.
+
+    ``margin = risks[runner_up] - risks[action]`` (>= 0); invalid rows hold NaN and index -1 for the runner-up.
+    """
+
+    posteriors: np.ndarray
+    risks: np.ndarray
+    action: np.ndarray
+    runner_up: np.ndarray
+    margin: np.ndarray
+    valid: np.ndarray
+
+
+class Rule:
+    """A decision rule loaded from an artefact (or built by the compiler).
+
+    ``actions`` lists the policy's actions, then the reject action when there is one.
+    """
+
+    def __init__(self, manifest: Mapping[str, Any], params: Mapping[str, np.ndarray], origin: str = "<rule>") -> None:
+        self.manifest: Mapping[str, Any] = MappingProxyType(dict(manifest))
+        frozen = {}
+        for name, array in params.items():
+            copy = np.array(array, dtype=np.float64)
+            copy.setflags(write=False)
+            frozen[name] = copy
+        self._params = frozen
+        self.params: Mapping[str, np.ndarray] = MappingProxyType(frozen)
+        self.classes: tuple[str, ...] = tuple(manifest["classes"])
+        self.actions: tuple[str, ...] = tuple(manifest["actions"])
+        self.features: tuple[str, ...] = tuple(manifest["features"])
+        self.reject_action: str | None = manifest.get("reject_action")
+        self.evidence: str = manifest["evidence"]["kind"]
+        self.invalid_input: str = manifest["invalid_input"]
+        self._validate(origin)
+
+    def _validate(self, origin: str) -> None:
+        if self.evidence not in _REQUIRED:
+            raise ArtefactError(f"{origin}: manifest field 'evidence.kind' is {self.evidence!r}, unknown here")
+        missing = [n for n in ("log_priors", "loss", *_REQUIRED[self.evidence]) if n not in self.params]
+        if missing:
+            raise ArtefactError(f"{origin}: arrays {missing} are missing for evidence {self.evidence!r}")
+        n_classes, n_actions, n_features = len(self.classes), len(self.actions), len(self.features)
+        expected = {"log_priors": (n_classes,), "loss": (n_actions, n_classes)}
+        if self.evidence == "gaussian":
+            expected |= {
+                "centre": (n_features,),
+                "whitening": (n_classes * n_features, n_features),
+                "whitened_means": (n_classes * n_features,),
+                "log_normalisers": (n_classes,),
+            }
+        elif self.evidence in ("posterior", "log-likelihood") and n_features != n_classes:
+            raise ArtefactError(f"{origin}: manifest field 'features' must name one column per class")
+        for name, shape in expected.items():
+            if self.params[name].shape != shape:
+                raise ArtefactError(f"{origin}: array {name!r} has shape {self.params[name].shape}, expected {shape}")
+        if self.invalid_input == "reject" and self.reject_action is None:
+            raise ArtefactError(f"{origin}: manifest field 'invalid_input' is 'reject' but there is no reject action")
+
+    def __repr__(self) -> str:
+        return (
+            f"<Rule {self.manifest.get('policy')} r{self.manifest.get('revision')}: "
+            f"{len(self.classes)} classes, {len(self.actions)} actions, evidence {self.evidence}>"
+        )
+
+    @property
+    def content_sha256(self) -> str | None:
+        return self.manifest.get("content_sha256")
+
+    def _evaluate(self, X: object) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        return kernel.evaluate(X, self.evidence, self._params, len(self.features), self.invalid_input)
+
+    def posteriors(self, X: object) -> np.ndarray:
+        """P(class | x), shape (n, K), columns in ``classes`` order; NaN rows are invalid input."""
+        return self._evaluate(X)[0]
+
+    def risks(self, X: object) -> np.ndarray:
+        """Conditional risks R(a|x), shape (n, A), columns in ``actions`` order (reject last)."""
+        return self._evaluate(X)[1]
+
+    def decide(self, X: object) -> np.ndarray:
+        """Index into ``actions`` of the minimum-risk action per row, shape (n,)."""
+        _, risks, valid = self._evaluate(X)
+        return kernel.choose(risks, valid, len(self.actions) - 1)
+
+    def decide_names(self, X: object) -> np.ndarray:
+        return np.asarray(self.actions, dtype=object)[self.decide(X)]
+
+    def decide_one(self, record: Mapping[str, float]) -> str:
+        """Decide one record given as a mapping of feature name to value."""
+        return str(self.decide_names(self.row_from_record(record)[None, :])[0])
+
+    def row_from_record(self, record: Mapping[str, float]) -> np.ndarray:
+        missing = [f for f in self.features if f not in record]
+        unknown = [k for k in record if k not in self.features]
+        if missing or unknown:
+            parts = [
+                f"missing feature(s) {missing}" if missing else "",
+                f"unknown field(s) {unknown}" if unknown else "",
+            ]
+            raise kernel.InputError("; ".join(p for p in parts if p))
+        values = []
+        for name in self.features:
+            value = record[name]
+            if isinstance(value, bool) or not isinstance(value, int | float | np.integer | np.floating):
+                raise kernel.InputError(f"feature {name!r} must be a number, got {value!r}")
+            values.append(float(value))
+        return np.array(values, dtype=np.float64)
+
+    def explain(self, X: object) -> Explanation:
+        """Posteriors, risks, chosen action, runner-up and margin per row (invalid rows per invalid_input)."""
+        explanation = self.assess(X)
+        if self.invalid_input == "error" and not explanation.valid.all():
+            raise kernel.InputError(kernel.invalid_rows_message(explanation.valid))
+        return explanation
+
+    def assess(self, X: object) -> Explanation:
+        """Like :meth:`explain`, but invalid rows never raise: they are marked in ``valid`` and sent to reject
+        when the policy has a reject option (index ``len(actions) - 1`` otherwise, with NaN risks)."""
+        prepared = kernel.prepare_input(X, len(self.features))
+        posteriors, risks, valid = kernel.posteriors_and_risks(prepared, self.evidence, self._params)
+        action = kernel.choose(risks, valid, len(self.actions) - 1)
+        n_rows = risks.shape[0]
+        runner_up = np.full(n_rows, -1)
+        margin = np.full(n_rows, np.nan)
+        if len(self.actions) > 1:
+            others = np.where(valid[:, None], risks, 0.0)
+            others[np.arange(n_rows), action] = np.inf
+            second = np.argmin(others, axis=1)
+            runner_up = np.where(valid, second, -1)
+            margin = np.where(valid, others[np.arange(n_rows), second] - risks[np.arange(n_rows), action], np.nan)
+        return Explanation(posteriors, risks, action, runner_up, margin, valid)
+
+
+def load_rule(path: str | os.PathLike[str]) -> Rule:
+    """Load and verify an artefact; raise ArtefactError (a ValueError) naming what failed."""
+    origin = os.fspath(path)
+    try:
+        with open(path, "rb") as handle:
+            data = handle.read()
+    except OSError as exc:
+        raise ArtefactError(f"{origin}: cannot read: {exc.strerror}") from None
+    manifest, params = decode_rule(data, origin)
+    try:
+        return Rule(manifest, params, origin)
+    except KeyError as exc:
+        raise ArtefactError(f"{origin}: manifest field {exc.args[0]!r} is missing") from None
