@@ -14,6 +14,7 @@ from policyc.diagnostics import CompileError, Diagnostic, Severity
 from policyc.evidence import FittedEvidence, Progress, fit_evidence
 from policyc.evidence.gaussian import FitProblem
 from policyc.io import DataError
+from policyc.manifest import RuleManifest
 from policyc.model import Policy
 from policyc.runtime import FORMAT_NAME, FORMAT_VERSION, Rule
 from policyc.runtime.artefact import decode_rule, encode_rule
@@ -92,28 +93,29 @@ def _manifest(
     policy_sha256: str,
 ) -> dict[str, Any]:
     counts = fitted.training_counts
-    return {
-        "format": FORMAT_NAME,
-        "format_version": FORMAT_VERSION,
-        "policy": policy.policy,
-        "revision": policy.revision,
-        "description": policy.description,
-        "classes": list(policy.classes),
-        "actions": actions,
-        "reject_action": policy.reject.action if policy.reject is not None else None,
-        "reject_cost": reject_cost,
-        "features": list(fitted.features),
-        "priors": dict(zip(policy.classes, priors.tolist(), strict=True)),
-        "priors_source": "training" if policy.priors == "training" else "policy",
-        "training_class_counts": counts,
-        "training_priors": (
+    manifest = RuleManifest(
+        format=FORMAT_NAME,
+        format_version=FORMAT_VERSION,
+        policy=policy.policy,
+        revision=policy.revision,
+        description=policy.description,
+        classes=list(policy.classes),
+        actions=actions,
+        reject_action=policy.reject.action if policy.reject is not None else None,
+        reject_cost=reject_cost,
+        features=list(fitted.features),
+        priors=dict(zip(policy.classes, priors.tolist(), strict=True)),
+        priors_source="training" if policy.priors == "training" else "policy",
+        training_class_counts=counts,
+        training_priors=(
             {name: counts[name] / sum(counts.values()) for name in policy.classes} if counts is not None else None
         ),
-        "loss_stated_as": policy.matrix_key,
-        "loss_unit": policy.loss_unit,
-        "invalid_input": policy.invalid_input,
-        "evidence": fitted.description,
-        "policy_sha256": policy_sha256,
-        "training_sha256": fitted.training_sha256,
-        "policyc_version": __version__,
-    }
+        loss_stated_as=policy.matrix_key,
+        loss_unit=policy.loss_unit,
+        invalid_input=policy.invalid_input,
+        evidence=fitted.description,
+        policy_sha256=policy_sha256,
+        training_sha256=fitted.training_sha256,
+        policyc_version=__version__,
+    )
+    return manifest.model_dump(mode="json", exclude_none=False, exclude={"arrays", "content_sha256"})
