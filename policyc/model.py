@@ -260,14 +260,22 @@ def _data_path(loc: tuple[Any, ...], data: Any, last_is_missing: bool) -> tuple[
     path: list[str | int] = []
     node = data
     for depth, part in enumerate(loc):
-        if (isinstance(node, dict) and isinstance(part, str) and part in node) or (
-            isinstance(node, tuple) and isinstance(part, int) and 0 <= part < len(node)
-        ):
-            node = node[part]
+        found, child = _child(node, part)
+        if found:
+            node = child
         elif not (last_is_missing and depth == len(loc) - 1):
             continue
         path.append(part)
     return tuple(path)
+
+
+def _child(node: Any, part: object) -> tuple[bool, Any]:
+    """Whether ``part`` is a key (or index) of the loaded mapping (or sequence) ``node``, and its value."""
+    if isinstance(node, dict) and isinstance(part, str) and part in node:
+        return True, node[part]
+    if isinstance(node, tuple) and isinstance(part, int) and 0 <= part < len(node):
+        return True, node[part]
+    return False, None
 
 
 def _deduplicate(diagnostics: list[Diagnostic]) -> list[Diagnostic]:

@@ -68,7 +68,7 @@ class SourceDocument:
         return diagnostic.located(self.name, self.positions, self.key_positions)
 
 
-class _StrictLoader(yaml.SafeLoader):
+class _StrictLoader(yaml.SafeLoader):  # type: ignore[misc]  # PyYAML ships no types
     """Refuses anchors, aliases and explicit tags while composing."""
 
     def compose_node(self, parent: Node | None, index: Any) -> Node | None:

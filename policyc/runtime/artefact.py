@@ -19,7 +19,7 @@ import hashlib
 import io
 import json
 import zipfile
-from typing import Any
+from typing import Any, Final
 
 import numpy as np
 
@@ -32,7 +32,7 @@ __all__ = [
     "encode_rule",
 ]
 
-FORMAT_NAME = "policyc-rule"
+FORMAT_NAME: Final = "policyc-rule"
 FORMAT_VERSION = "1.0"
 """major.minor: a reader refuses a newer major version and accepts any minor version of its own major."""
 
