@@ -62,8 +62,14 @@ class SourceDocument:
         return self.text.splitlines()
 
     def locate(self, diagnostic: Diagnostic, at_key: bool = False) -> Diagnostic:
-        """Add file, line and column: of the value at the path, or of its key with ``at_key``."""
-        if at_key and diagnostic.path in self.key_positions:
+        """Add file, line and column: of the value at the path, or of its key.
+
+        The key is used with ``at_key``, and when the value starts on a later line than its key
+        (a block mapping or list, whose own position is that of its first entry).
+        """
+        key = self.key_positions.get(diagnostic.path)
+        value = self.positions.get(diagnostic.path)
+        if key is not None and (at_key or (value is not None and value.line > key.line)):
             return diagnostic.located(self.name, self.key_positions, {})
         return diagnostic.located(self.name, self.positions, self.key_positions)
 
@@ -125,7 +131,7 @@ def parse_source(text: str, name: str = "<policy>", base_dir: FilePath | None = 
         mark = exc.problem_mark or exc.context_mark
         message = " ".join(p for p in (exc.context, exc.problem) if p) or "invalid YAML"
         raise _source_error(name, "yaml-syntax", message, _position(mark)) from None
-    if root is None:
+    if root is None or (isinstance(root, ScalarNode) and root.value == "" and root.style is None):
         raise _source_error(name, "policy-empty", "the file holds no policy", Position(1, 1))
     if not isinstance(root, MappingNode):
         raise _source_error(

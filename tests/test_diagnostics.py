@@ -49,7 +49,7 @@ def diag(
         (("loss", "pack premium", "defect"), '$.loss["pack premium"].defect'),
         (("evidence", "log-likelihood"), '$.evidence["log-likelihood"]'),
         (("priors", "0"), '$.priors["0"]'),
-        (("say \"hi\"",), '$["say \\"hi\\""]'),
+        (('say "hi"',), '$["say \\"hi\\""]'),
         (("",), '$[""]'),
         (("_private", "snake_case9"), "$._private.snake_case9"),
     ],

@@ -309,9 +309,12 @@ def test_document_keeps_name_text_and_hash(document: SourceDocument) -> None:
 
 def test_locate_uses_the_value_or_the_key(document: SourceDocument) -> None:
     diagnostic = Diagnostic("x", Severity.ERROR, "m", ("loss", "juice"))
-    assert document.locate(diagnostic).line == 7  # the value: a block mapping starting below the key
-    at_key = document.locate(diagnostic, at_key=True)
-    assert (at_key.file, at_key.line, at_key.col) == ("demo.yaml", 6, 3)
+    # a block mapping starts below its key, so the key's line is the one to show
+    located = document.locate(diagnostic)
+    assert (located.file, located.line, located.col) == ("demo.yaml", 6, 3)
+    assert document.locate(diagnostic, at_key=True) == located
+    flow = Diagnostic("x", Severity.ERROR, "m", ("loss", "pack"))
+    assert document.locate(flow).col != document.locate(flow, at_key=True).col  # flow value: the value itself
 
 
 def test_locate_falls_back_to_the_nearest_ancestor(document: SourceDocument) -> None:
