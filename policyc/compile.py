@@ -73,6 +73,7 @@ def rule_from_parts(policy: Policy, fitted: FittedEvidence, policy_sha256: str) 
     if reject_cost is not None:
         assert policy.reject is not None
         # the reject option as one more action of constant risk d: R(reject|x) = Σ_k d P(k|x) = d
+        # (the kernel sets constant rows' risk to d exactly)
         loss = np.vstack([loss, np.full(len(policy.classes), reject_cost)])
         actions.append(policy.reject.action)
     with np.errstate(divide="ignore"):

@@ -60,7 +60,7 @@ def _kernel_body() -> str:
 
 def _header(rule: Rule) -> str:
     manifest = rule.manifest
-    priors = "\n".join(f"    {name}: {p:.6g}" for name, p in manifest["priors"].items())
+    priors = "\n".join(f"    {name}: {manifest['priors'][name]:.6g}" for name in rule.classes)
     loss = format_matrix(np.asarray(rule.params["loss"]), rule.actions, rule.classes, "action", "true class")
     unit = f" ({manifest['loss_unit']})" if manifest.get("loss_unit") else ""
     title = f"Decision rule {manifest['policy']!r} revision {manifest['revision']}"

@@ -60,9 +60,13 @@ def gaussian_log_likelihoods(X: np.ndarray, params: dict[str, np.ndarray]) -> tu
     whitening = params["whitening"]
     n_classes = params["log_normalisers"].shape[0]
     n_features = whitening.shape[1]
-    # z = L_k⁻¹(x - c) - L_k⁻¹(μ_k - c) = L_k⁻¹(x - μ_k), with c a common centre against cancellation
-    z = (X - params["centre"]) @ whitening.T - params["whitened_means"]
-    squared = np.einsum("nkd,nkd->nk", z.reshape(-1, n_classes, n_features), z.reshape(-1, n_classes, n_features))
+    # z = L_k⁻¹(x - c) - L_k⁻¹(μ_k - c) = L_k⁻¹(x - μ_k), with c a common centre against cancellation.
+    # Rows holding NaN or ±inf (inf·0 in the product) are marked invalid by the isfinite mask below, and rows
+    # so large that every squared distance overflows get -inf everywhere and are marked invalid by _chunk;
+    # their floating-point warnings are expected, so they are silenced rather than raised under -W error.
+    with np.errstate(invalid="ignore", over="ignore"):
+        z = (X - params["centre"]) @ whitening.T - params["whitened_means"]
+        squared = np.einsum("nkd,nkd->nk", z.reshape(-1, n_classes, n_features), z.reshape(-1, n_classes, n_features))
     log_likelihoods = params["log_normalisers"] - 0.5 * squared
     return log_likelihoods, np.isfinite(X).all(axis=1)
 
@@ -130,6 +134,9 @@ def _chunk(X: np.ndarray, evidence: str, params: dict[str, np.ndarray]) -> tuple
     posteriors = unnormalised / unnormalised.sum(axis=1, keepdims=True)
     # R(a|x) = Σ_k λ(a|k) P(k|x)   (Duda, Hart & Stork 2001, §2.2; Fukunaga 1990, eq. 3.19)
     risks = posteriors @ params["loss"].T
+    # a constant row (the reject option) has risk exactly d, not d·ΣP(k|x) with ΣP = 1 ± ε
+    constant = (params["loss"] == params["loss"][:, :1]).all(axis=1)
+    risks[:, constant] = params["loss"][constant, 0]
     posteriors[~valid] = np.nan
     risks[~valid] = np.nan
     return posteriors, risks, valid

@@ -1,0 +1,196 @@
+"""Builders shared by the compile, runtime, emit and reference tests.
+
+Policies are written as YAML text (JSON flow mappings are YAML too, and ``json.dumps``
+writes every float64 so that it reads back exactly). Two ways to get a Rule:
+
+* :func:`compile_text` writes the policy to a directory and runs the whole compiler
+  (source, model, checks, evidence, compile), as ``policyc compile`` does;
+* :func:`rule_from_text` and :func:`gaussian_rule` skip the consistency checks (a few
+  linear programs per policy) and call the compiler's assembly step directly; property
+  tests that build hundreds of rules use them.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import importlib.util
+import json
+import sys
+from collections.abc import Sequence
+from pathlib import Path
+from types import ModuleType
+from typing import Any
+
+import numpy as np
+
+from policyc.compile import CompiledPolicy, compile_policy, rule_from_parts
+from policyc.emit import write_module
+from policyc.evidence import FittedEvidence, fit_evidence
+from policyc.evidence.gaussian import GaussianFit, kernel_params
+from policyc.model import build_policy
+from policyc.runtime import Rule
+from policyc.source import parse_source
+
+ROOT = Path(__file__).resolve().parent.parent
+DEMOS = ROOT / "policies-demo"
+PACKHOUSE = DEMOS / "packhouse" / "policy.yaml"
+CLAIMS = DEMOS / "claims" / "policy.yaml"
+
+
+def names(prefix: str, count: int) -> list[str]:
+    return [f"{prefix}{i}" for i in range(count)]
+
+
+def policy_text(
+    *,
+    classes: Sequence[str],
+    priors: Sequence[float] | str,
+    actions: Sequence[str],
+    loss: np.ndarray,
+    evidence: dict[str, Any],
+    reject_cost: float | None = None,
+    reject_action: str = "reject",
+    invalid_input: str = "error",
+    name: str = "test-policy",
+) -> str:
+    """YAML text of a policy; ``loss`` has shape (len(actions), len(classes)), rows are actions."""
+    loss = np.asarray(loss, dtype=float)
+    assert loss.shape == (len(actions), len(classes))
+    prior_value: Any = priors if isinstance(priors, str) else dict(zip(classes, map(float, priors), strict=True))
+    lines = [
+        f"policy: {name}",
+        "revision: 1",
+        f"classes: {json.dumps(list(classes))}",
+        f"priors: {json.dumps(prior_value)}",
+        f"actions: {json.dumps(list(actions))}",
+        "loss:",
+        *(
+            f"  {json.dumps(a)}: {json.dumps(dict(zip(classes, map(float, row), strict=True)))}"
+            for a, row in zip(actions, loss, strict=True)
+        ),
+        f"invalid_input: {invalid_input}",
+        f"evidence: {json.dumps(evidence)}",
+    ]
+    if reject_cost is not None:
+        lines.append(f"reject: {json.dumps({'action': reject_action, 'cost': float(reject_cost)})}")
+    return "\n".join(lines) + "\n"
+
+
+def loglik_evidence(classes: Sequence[str]) -> dict[str, Any]:
+    """Log-likelihood evidence with one input column ``ll_<class>`` per class."""
+    return {"kind": "log-likelihood", "columns": {c: f"ll_{c}" for c in classes}}
+
+
+def posterior_evidence(classes: Sequence[str], trained_priors: Sequence[float]) -> dict[str, Any]:
+    """Posterior evidence with columns ``p_<class>`` and the upstream model's training priors."""
+    return {
+        "kind": "posterior",
+        "columns": {c: f"p_{c}" for c in classes},
+        "trained_priors": dict(zip(classes, map(float, trained_priors), strict=True)),
+        "calibration": {"method": "none"},
+    }
+
+
+def rule_from_text(text: str) -> Rule:
+    """Assemble a Rule from policy text without the consistency checks (log-likelihood/posterior evidence)."""
+    document = parse_source(text, "policy.yaml")
+    policy = build_policy(document)
+    return rule_from_parts(policy, fit_evidence(policy, None), document.sha256)
+
+
+def compile_text(directory: Path, text: str, filename: str = "policy.yaml") -> CompiledPolicy:
+    """Write the policy into ``directory`` and run the full compiler on it."""
+    path = directory / filename
+    path.write_text(text, encoding="utf-8")
+    return compile_policy(path)
+
+
+def gaussian_rule(
+    means: np.ndarray,
+    covariances: np.ndarray,
+    priors: Sequence[float],
+    loss: np.ndarray,
+    reject_cost: float | None = None,
+    invalid_input: str | None = None,
+    covariance: str = "full",
+) -> Rule:
+    """A Gaussian-evidence Rule from exact parameters (nothing fitted).
+
+    ``means`` (K, d), ``covariances`` (K, d, d); ``invalid_input`` defaults to reject when there is
+    a reject option, else error. The arrays go through the compiler's own
+    :func:`kernel_params` and :func:`rule_from_parts`, so the rule is what ``compile`` would
+    produce had the fit returned exactly these parameters.
+    """
+    means = np.asarray(means, dtype=float)
+    covariances = np.asarray(covariances, dtype=float)
+    if invalid_input is None:
+        invalid_input = "reject" if reject_cost is not None else "error"
+    n_classes, n_features = means.shape
+    classes, actions, features = names("c", n_classes), names("a", np.shape(loss)[0]), names("x", n_features)
+    evidence = {
+        "kind": "gaussian",
+        "covariance": covariance,
+        "features": features,
+        "training": {"data": "unused.csv", "label": "y"},
+    }
+    text = policy_text(
+        classes=classes,
+        priors=priors,
+        actions=actions,
+        loss=loss,
+        evidence=evidence,
+        reject_cost=reject_cost,
+        invalid_input=invalid_input,
+        name="gaussian-test",
+    )
+    document = parse_source(text, "policy.yaml")
+    policy = build_policy(document)
+    fit = GaussianFit(means, covariances, (0.0,) * n_classes, (1,) * n_classes)
+    fitted = FittedEvidence(tuple(features), kernel_params(fit), {"kind": "gaussian", "covariance": covariance})
+    return rule_from_parts(policy, fitted, document.sha256)
+
+
+def random_spd(rng: np.random.Generator, d: int, low: float = 0.3, high: float = 3.0) -> np.ndarray:
+    """A random symmetric positive-definite matrix with eigenvalues in [low, high]."""
+    q, _ = np.linalg.qr(rng.standard_normal((d, d)))
+    matrix = q @ np.diag(rng.uniform(low, high, d)) @ q.T
+    return 0.5 * (matrix + matrix.T)
+
+
+def import_module_from(path: Path, name: str) -> ModuleType:
+    """Import a generated module from a file under a unique name."""
+    spec = importlib.util.spec_from_file_location(name, path)
+    assert spec is not None and spec.loader is not None
+    module = importlib.util.module_from_spec(spec)
+    sys.modules[name] = module
+    try:
+        spec.loader.exec_module(module)
+    finally:
+        sys.modules.pop(name, None)
+    return module
+
+
+_module_counter = 0
+
+
+def standalone(rule: Rule, directory: Path) -> ModuleType:
+    """Write the standalone module for ``rule`` into ``directory`` and import it."""
+    global _module_counter
+    _module_counter += 1
+    name = f"policyc_generated_{_module_counter}"
+    path = directory / f"{name}.py"
+    write_module(rule, path)
+    return import_module_from(path, name)
+
+
+def sha256_of(path: Path) -> str:
+    return hashlib.sha256(path.read_bytes()).hexdigest()
+
+
+def read_csv_columns(path: Path, columns: Sequence[str]) -> np.ndarray:
+    """Numeric columns of a CSV file as a float64 (n, len(columns)) array, read with the csv module."""
+    import csv
+
+    with path.open(newline="", encoding="utf-8") as handle:
+        rows = list(csv.DictReader(handle))
+    return np.array([[float(row[c]) for c in columns] for row in rows], dtype=np.float64)
