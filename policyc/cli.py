@@ -7,7 +7,7 @@ import sys
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from pathlib import Path
-from typing import NoReturn
+from typing import TYPE_CHECKING, NoReturn
 
 import click
 
@@ -22,6 +22,10 @@ from policyc.io import DataError, count_rows
 from policyc.runtime import ArtefactError, InputError, Rule, load_rule
 from policyc.schemas import policy_schema_text
 from policyc.tables import format_matrix
+
+if TYPE_CHECKING:
+    from policyc.loading import LoadedRule
+    from policyc.plot import FigureSize
 
 __all__ = ["main"]
 
@@ -228,6 +232,392 @@ def inspect(rule_file: Path, output_format: str) -> None:
 
 def _json_dump(value: object) -> str:
     return json.dumps(value, indent=2, sort_keys=True)
+
+
+# --- diff, evaluate, plot -----------------------------------------------------------------------
+# Their modules are imported inside the commands: `policyc check` need not pay for scipy.stats or matplotlib.
+
+REPORT_FORMAT_OPTION = click.option(
+    "--format",
+    "output_format",
+    type=click.Choice(["text", "markdown", "json"]),
+    default="text",
+    show_default=True,
+    help="text for a terminal, markdown for a pull-request comment, json for tools (shape in the module docs).",
+)
+REPORT_OUTPUT_OPTION = click.option(
+    "-o",
+    "--output",
+    "report_file",
+    type=click.Path(dir_okay=False, path_type=Path),
+    help="Write the report to this file instead of standard output.",
+)
+CONFIDENCE_OPTION = click.option(
+    "--confidence",
+    type=click.FloatRange(0.5, 1.0, min_open=False, max_open=True),
+    default=0.95,
+    show_default=True,
+    help="Two-sided level of bootstrap intervals.",
+)
+RESAMPLES_OPTION = click.option(
+    "--resamples", type=click.IntRange(min=100), default=2000, show_default=True, help="Bootstrap resamples."
+)
+SEED_OPTION = click.option(
+    "--seed",
+    type=click.IntRange(min=0),
+    default=0,
+    show_default=True,
+    help="Seed of the random draws (bootstrap resamples, Sobol scrambles).",
+)
+
+
+def _load_subject(path: Path) -> LoadedRule:
+    """A policy file (checked and compiled in memory) or a rule file; exit 1 with diagnostics on errors."""
+    from policyc.loading import load_rule_or_policy
+
+    try:
+        loaded = load_rule_or_policy(path)
+    except PolicyError as error:
+        _fail(error)
+    except ArtefactError as error:
+        raise click.ClickException(str(error)) from None
+    if loaded.diagnostics:
+        click.echo(render_text(loaded.diagnostics), err=True)
+    return loaded
+
+
+def _emit_report(text: str, report_file: Path | None) -> None:
+    if report_file is None:
+        click.echo(text, nl=not text.endswith("\n"))
+        return
+    from policyc.atomic import write_bytes_atomically
+
+    write_bytes_atomically(report_file, text.encode("utf-8"))
+    click.echo(f"report -> {report_file}", err=True)
+
+
+def _simplex_samples(ctx: click.Context, param: click.Parameter, value: int) -> int:
+    if value < 256 or value & (value - 1):
+        raise click.BadParameter("must be a power of two, at least 256 (e.g. 16384)", ctx, param)
+    return value
+
+
+@main.command(name="diff", epilog=CAUTION)
+@click.argument("old", type=click.Path(dir_okay=False, path_type=Path))
+@click.argument("new", type=click.Path(dir_okay=False, path_type=Path))
+@click.option(
+    "--data",
+    type=click.Path(dir_okay=False, path_type=Path),
+    help="Reference CSV/Parquet with the rules' feature columns: flip matrix, reject rates, expected risk.",
+)
+@click.option("--labels", "label", metavar="COL", help="Column of true classes in --data: empirical risk.")
+@REPORT_FORMAT_OPTION
+@REPORT_OUTPUT_OPTION
+@click.option(
+    "--max-flip-rate",
+    type=click.FloatRange(0.0, 1.0),
+    help="Gate: share of --data rows whose action changes.",
+)
+@click.option(
+    "--max-risk-increase",
+    type=float,
+    help="Gate: empirical risk increase new - old on --data with --labels, by the new loss matrix "
+    "(needs labels: under the new model alone the new rule's expected risk can never be higher).",
+)
+@click.option("--max-reject-rate", type=click.FloatRange(0.0, 1.0), help="Gate: the new rule's reject share on --data.")
+@click.option(
+    "--max-simplex-change",
+    type=click.FloatRange(0.0, 1.0),
+    help="Gate, no data needed: share of the probability simplex where the action changes.",
+)
+@click.option(
+    "--simplex-samples",
+    type=int,
+    default=16384,
+    show_default=True,
+    callback=_simplex_samples,
+    help="Sobol points on the simplex (three or more classes); a power of two.",
+)
+@CONFIDENCE_OPTION
+@RESAMPLES_OPTION
+@SEED_OPTION
+def diff_command(
+    old: Path,
+    new: Path,
+    data: Path | None,
+    label: str | None,
+    output_format: str,
+    report_file: Path | None,
+    max_flip_rate: float | None,
+    max_risk_increase: float | None,
+    max_reject_rate: float | None,
+    max_simplex_change: float | None,
+    simplex_samples: int,
+    confidence: float,
+    resamples: int,
+    seed: int,
+) -> None:
+    """What changes from OLD to NEW (each a policy .yaml/.yml or a compiled rule file).
+
+    Reports changed settings (with file:line:col when both are policies), where on the
+    probability simplex the chosen action changes, and with --data the decisions that flip
+    and what that costs. Exit 0 when every gate passes, 1 when a gate fails or an input is
+    unusable, 2 on usage errors.
+    """
+    from policyc.diff import GateLimits, diff
+    from policyc.diff_report import render_diff
+
+    limits = GateLimits(max_flip_rate, max_risk_increase, max_reject_rate, max_simplex_change)
+    if label is not None and data is None:
+        raise click.UsageError("--labels needs --data")
+    if limits.need_data and data is None:
+        raise click.UsageError(f"--{', --'.join(limits.need_data)} need(s) --data")
+    if max_risk_increase is not None and label is None:
+        raise click.UsageError("--max-risk-increase needs --labels")
+    before, after = _load_subject(old), _load_subject(new)
+    try:
+        report = diff(before, after, data, label, limits, simplex_samples, confidence, resamples, seed)
+    except (DataError, InputError) as error:
+        raise click.ClickException(str(error)) from None
+    _emit_report(render_diff(report, output_format), report_file)
+    failed = [gate for gate in report.gates if not gate.passed]
+    for gate in failed:
+        click.echo(gate.message, err=True)
+    sys.exit(1 if failed else 0)
+
+
+@main.command(epilog=CAUTION)
+@click.argument("rule_file", type=click.Path(dir_okay=False, path_type=Path))
+@click.argument("labelled_data", type=click.Path(dir_okay=False, path_type=Path))
+@click.option("--label", required=True, metavar="COL", help="Column of true classes.")
+@REPORT_FORMAT_OPTION
+@REPORT_OUTPUT_OPTION
+@click.option(
+    "--plot-curve",
+    type=click.Path(dir_okay=False, path_type=Path),
+    help="Also draw the risk-reject curve (.png or .svg; needs matplotlib).",
+)
+@click.option(
+    "--curve-points",
+    type=click.IntRange(min=3, max=1001),
+    default=41,
+    show_default=True,
+    help="Reject costs on the curve, evenly from 0 to V (plus the rule's own cost).",
+)
+@CONFIDENCE_OPTION
+@RESAMPLES_OPTION
+@SEED_OPTION
+def evaluate(
+    rule_file: Path,
+    labelled_data: Path,
+    label: str,
+    output_format: str,
+    report_file: Path | None,
+    plot_curve: Path | None,
+    curve_points: int,
+    confidence: float,
+    resamples: int,
+    seed: int,
+) -> None:
+    """Empirical risk, errors, rejects, confusion and the risk-reject curve of RULE_FILE on LABELLED_DATA.
+
+    RULE_FILE may also be a policy file (compiled in memory). For posterior evidence the
+    report adds a calibration check of the rule's (prior-corrected) posteriors. Exit 0, or 1
+    when the rule or the data cannot be used.
+    """
+    from policyc.evaluate import evaluate as run_evaluation
+    from policyc.evaluate_report import render_evaluation
+
+    loaded = _load_subject(rule_file)
+    try:
+        result = run_evaluation(loaded, labelled_data, label, confidence, resamples, seed, curve_points)
+    except (DataError, InputError) as error:
+        raise click.ClickException(str(error)) from None
+    _emit_report(render_evaluation(result, output_format), report_file)
+    if plot_curve is not None:
+        from policyc.plot import risk_reject_curve
+
+        _draw(lambda: risk_reject_curve(result, plot_curve))
+
+
+def _draw(draw: Callable[[], Path]) -> None:
+    from policyc.plot import PlotError
+
+    try:
+        written = draw()
+    except PlotError as error:
+        raise click.ClickException(str(error)) from None
+    except (DataError, InputError) as error:
+        raise click.ClickException(str(error)) from None
+    click.echo(f"picture -> {written}", err=True)
+
+
+def _size(ctx: click.Context, param: click.Parameter, value: str | None) -> FigureSize:
+    from policyc.plot import DEFAULT_SIZE, PlotError, parse_size
+
+    if value is None:
+        return DEFAULT_SIZE
+    try:
+        return parse_size(value)
+    except PlotError as error:
+        raise click.BadParameter(str(error), ctx, param) from None
+
+
+def _holds(ctx: click.Context, param: click.Parameter, values: tuple[str, ...]) -> dict[str, float]:
+    held = {}
+    for item in values:
+        name, sep, number = item.partition("=")
+        try:
+            if not sep:
+                raise ValueError
+            held[name.strip()] = float(number)
+        except ValueError:
+            raise click.BadParameter(f"{item!r} is not FEATURE=NUMBER", ctx, param) from None
+    return held
+
+
+PICTURE_OPTION = click.option(
+    "-o",
+    "--output",
+    "picture",
+    required=True,
+    type=click.Path(dir_okay=False, path_type=Path),
+    help="Picture file, .png or .svg.",
+)
+SIZE_OPTION = click.option(
+    "--size",
+    callback=_size,
+    help="WxH in inches (8x6, the default) or pixels (1200x900px); raster output at 100 pixels per inch.",
+)
+
+
+@main.group(epilog="Pictures need matplotlib: pip install 'policyc[plot]'.")
+def plot() -> None:
+    """Draw pictures of rules for review: regions, simplex, curve.
+
+    \b
+      policyc plot regions RULE --x FEAT --y FEAT [--hold FEAT=VALUE ...] [--points DATA --label COL] -o FILE
+      policyc plot simplex RULE [--compare OLD_RULE_OR_POLICY] -o FILE
+      policyc plot curve RULE DATA --label COL -o FILE
+
+    Every RULE may be a rule file or a policy file (compiled in memory). FILE ends in .png or
+    .svg; --size WxH sets inches (8x6, the default) or pixels (1200x900px).
+    """
+
+
+@plot.command(name="regions")
+@click.argument("rule_file", metavar="RULE", type=click.Path(dir_okay=False, path_type=Path))
+@click.option("--x", "x_feature", required=True, metavar="FEAT", help="Feature on the horizontal axis.")
+@click.option("--y", "y_feature", required=True, metavar="FEAT", help="Feature on the vertical axis.")
+@click.option(
+    "--hold",
+    multiple=True,
+    callback=_holds,
+    metavar="FEAT=VALUE",
+    help="Value of another feature (repeatable); default: the mean of the class means.",
+)
+@click.option(
+    "--points", type=click.Path(dir_okay=False, path_type=Path), help="CSV/Parquet of labelled points to overlay."
+)
+@click.option("--label", metavar="COL", help="Class column of --points.")
+@PICTURE_OPTION
+@SIZE_OPTION
+def plot_regions(
+    rule_file: Path,
+    x_feature: str,
+    y_feature: str,
+    hold: dict[str, float],
+    points: Path | None,
+    label: str | None,
+    picture: Path,
+    size: FigureSize,
+) -> None:
+    """Decision regions of a gaussian RULE over two features, the others held fixed."""
+    from policyc.plot import decision_regions
+
+    if (points is None) != (label is None):
+        raise click.UsageError("--points and --label go together")
+    loaded = _load_subject(rule_file)
+    _draw(lambda: decision_regions(loaded, x_feature, y_feature, picture, hold, points, label, size))
+
+
+@plot.command(name="simplex")
+@click.argument("rule_file", metavar="RULE", type=click.Path(dir_okay=False, path_type=Path))
+@click.option(
+    "--compare",
+    type=click.Path(dir_okay=False, path_type=Path),
+    help="An older rule or policy: its boundaries are drawn dashed over RULE's regions, changes hatched.",
+)
+@PICTURE_OPTION
+@SIZE_OPTION
+def plot_simplex(rule_file: Path, compare: Path | None, picture: Path, size: FigureSize) -> None:
+    """Decision regions of a three-class RULE on the posterior simplex (ternary map)."""
+    from policyc.plot import simplex_map
+
+    loaded = _load_subject(rule_file)
+    older = _load_subject(compare) if compare is not None else None
+    _draw(lambda: simplex_map(loaded, picture, older, size))
+
+
+@plot.command(name="curve")
+@click.argument("rule_file", metavar="RULE", type=click.Path(dir_okay=False, path_type=Path))
+@click.argument("data", type=click.Path(dir_okay=False, path_type=Path))
+@click.option("--label", required=True, metavar="COL", help="Column of true classes.")
+@PICTURE_OPTION
+@SIZE_OPTION
+def plot_curve(rule_file: Path, data: Path, label: str, picture: Path, size: FigureSize) -> None:
+    """The risk-reject curve of RULE on labelled DATA (Chow's trade-off)."""
+    from policyc.evaluate import evaluate as run_evaluation
+    from policyc.plot import risk_reject_curve
+
+    loaded = _load_subject(rule_file)
+    try:
+        result = run_evaluation(loaded, data, label)
+    except (DataError, InputError) as error:
+        raise click.ClickException(str(error)) from None
+    _draw(lambda: risk_reject_curve(result, picture, size))
+
+
+@main.command(epilog=CAUTION)
+@click.argument("rule_file", metavar="RULE", type=click.Path(dir_okay=False, path_type=Path))
+@click.argument("data", type=click.Path(dir_okay=False, path_type=Path))
+@click.option("--format", "output_format", type=click.Choice(["text", "json"]), default="text", show_default=True)
+@click.option(
+    "--confidence",
+    type=click.FloatRange(0.5, 1.0, max_open=True),
+    default=0.95,
+    show_default=True,
+    help="Two-sided level of the Wald intervals.",
+)
+def priors(rule_file: Path, data: Path, output_format: str, confidence: float) -> None:
+    """Estimate the class mix of unlabelled DATA with RULE (EM, Saerens et al. 2002).
+
+    Compares it with the rule's priors: a small p-value says the mix has changed and the
+    rule's decisions may no longer be the cheapest; review the priors before recompiling.
+    """
+    from policyc.priors import estimate_priors
+
+    rule = _load(rule_file)
+    try:
+        estimate = estimate_priors(rule, data, confidence)
+    except (DataError, InputError) as error:
+        raise click.ClickException(str(error)) from None
+    if output_format == "json":
+        click.echo(_json_dump(estimate.to_json()))
+        return
+    level = f"{confidence:.0%}"
+    click.echo(f"{'class':<20} {'rule prior':>10} {'estimate':>10}   {level} interval")
+    for k, name in enumerate(rule.classes):
+        click.echo(
+            f"{name:<20} {estimate.rule_priors[k]:>10.4f} {estimate.priors[k]:>10.4f}   "
+            f"[{estimate.low[k]:.4f}, {estimate.high[k]:.4f}]"
+        )
+    state = "converged" if estimate.converged else "did NOT converge"
+    click.echo(f"{estimate.rows} rows; EM {state} in {estimate.iterations} iterations")
+    click.echo(
+        f"change statistic 2[l(new) - l(rule)] = {estimate.change_statistic:.4g}, "
+        f"p-value {estimate.p_value:.3g} (chi-squared, {len(rule.classes) - 1} degrees of freedom)"
+    )
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+import json
+from pathlib import Path
+
 import numpy as np
 import pytest
 from scipy import optimize, special, stats
@@ -70,3 +73,26 @@ def test_zero_prior_class_stays_zero_and_intervals_are_ordered() -> None:
     assert np.all(estimate.low <= estimate.priors) and np.all(estimate.priors <= estimate.high)
     payload = estimate.to_json()
     assert set(payload) >= {"priors", "interval", "iterations", "change_statistic", "p_value"}
+
+
+def test_priors_command_reports_the_documented_json(tmp_path: Path) -> None:
+    from click.testing import CliRunner
+
+    from policyc.cli import main
+
+    root = Path(__file__).resolve().parents[1] / "policies-demo" / "packhouse"
+    runner = CliRunner()
+    rule = tmp_path / "packhouse.rule"
+    assert runner.invoke(main, ["compile", str(root / "policy.yaml"), "-o", str(rule)]).exit_code == 0
+    result = runner.invoke(main, ["priors", str(rule), str(root / "train.csv"), "--format", "json"])
+    assert result.exit_code == 0, result.output
+    report = json.loads(result.output)
+    assert set(report) >= {"priors", "interval", "iterations", "change_statistic", "p_value"}
+    assert sum(report["priors"].values()) == pytest.approx(1.0, abs=1e-9)
+    # the training file holds 15% defects (policies-demo/generate.py) against the rule's 10%: a detectable shift
+    low, high = report["interval"]["defect"]
+    assert low <= 0.15 <= high and report["p_value"] < 0.01
+    text = runner.invoke(main, ["priors", str(rule), str(root / "incoming.csv")])
+    assert text.exit_code == 0 and "p-value" in text.output
+    missing = runner.invoke(main, ["priors", str(rule), str(tmp_path / "nope.csv")])
+    assert missing.exit_code == 1 and "no such file" in missing.output
