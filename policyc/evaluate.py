@@ -65,6 +65,7 @@ from policyc.bootstrap import (
 from policyc.io import DEFAULT_BATCH_ROWS, DataError, read_feature_batches
 from policyc.loading import LoadedRule, identity
 from policyc.runtime import Rule, kernel
+from policyc.simplex import reject_reach_value
 
 __all__ = [
     "CALIBRATION_BINS",
@@ -78,7 +79,6 @@ __all__ = [
     "error_cells",
     "evaluate",
     "label_codes",
-    "reject_reach_value",
 ]
 
 CURVE_POINTS = 41
@@ -107,16 +107,6 @@ def label_codes(
             f"{whose} ({', '.join(classes)})"
         )
     return codes
-
-
-def reject_reach_value(loss: np.ndarray) -> float:
-    """V = max over posteriors p of min_a λ_a·p for the action rows (reject row excluded).
-
-    Deferring at cost d is ever chosen iff d < V (references.md CH-6; Chow 1970 for 0-1 loss, V = (K-1)/K).
-    """
-    from policyc.check import reject_reach_value as value  # linear program (scipy), only needed here
-
-    return float(value(loss))
 
 
 def error_cells(loss: np.ndarray, n_plain: int) -> np.ndarray:

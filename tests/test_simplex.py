@@ -1,6 +1,6 @@
 """Property tests of the decision-theoretic checks against brute force and closed forms.
 
-Reachability is a linear program over the probability simplex (check.winning_margin);
+Reachability is a linear program over the probability simplex (simplex.winning_margin);
 here it is compared with a dense grid over the 3-class simplex. The grid can only
 resolve margins larger than its own spacing allows, so each direction of the
 comparison is asserted only where that is provable:
@@ -28,11 +28,10 @@ from policyc.check import (
     check_document,
     every_action_is_reachable,
     no_dominated_actions,
-    reject_reach_value,
     run_rules,
-    winning_margin,
 )
 from policyc.model import Policy
+from policyc.simplex import reject_reach_value, winning_margin
 from policyc.source import parse_source
 
 PROPERTY_SETTINGS = settings(
