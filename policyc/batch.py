@@ -9,7 +9,7 @@ from pathlib import Path
 import numpy as np
 import pyarrow as pa
 
-from policyc.io import DEFAULT_BATCH_ROWS, DataError, TableWriter, batch_to_matrix, read_table_batches
+from policyc.io import DEFAULT_BATCH_ROWS, DataError, TableWriter, batch_to_matrix, read_ahead, read_table_batches
 from policyc.runtime import Explanation, Rule, kernel
 
 __all__ = ["decide_file", "explain_columns"]
@@ -55,7 +55,7 @@ def _decided_batches(
 ) -> Iterator[tuple[pa.RecordBatch, np.ndarray]]:
     added = ["action", *(explain_columns(rule) if explain else [])]
     first_row = 1
-    for batch in read_table_batches(data, None, batch_rows, numeric=rule.features):
+    for batch in read_ahead(read_table_batches(data, None, batch_rows, numeric=rule.features)):
         if first_row == 1:
             _require_columns(rule, data, batch.schema.names, added)
         features = batch_to_matrix(data, batch, rule.features, first_row)

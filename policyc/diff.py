@@ -669,8 +669,8 @@ def _batches(
     new_index = [columns.index(f) for f in new.features]
     for batch in read_feature_batches(path, columns, label=label, batch_rows=batch_rows):
         codes = None
-        if batch.labels is not None:
-            codes = label_codes(path, label or "", batch.labels, new.classes, batch.first_row, "the new rule")
+        if batch.label_column is not None:
+            codes = label_codes(path, label or "", batch, new.classes, "the new rule")
         yield (batch.features[:, old_index], batch.features[:, new_index]), codes, batch.first_row
 
 

@@ -62,7 +62,7 @@ from policyc.bootstrap import (
     BootstrapInterval,
     categorical_mean_interval,
 )
-from policyc.io import DEFAULT_BATCH_ROWS, DataError, read_feature_batches
+from policyc.io import DEFAULT_BATCH_ROWS, DataError, FeatureBatch, read_feature_batches
 from policyc.loading import LoadedRule, identity
 from policyc.runtime import Rule, kernel
 from policyc.simplex import reject_reach_value
@@ -93,17 +93,14 @@ ERROR_DEFINITION = (
 
 
 def label_codes(
-    path: Path, column: str, labels: np.ndarray, classes: Sequence[str], first_row: int, whose: str = "the rule"
+    path: Path, column: str, batch: FeatureBatch, classes: Sequence[str], whose: str = "the rule"
 ) -> np.ndarray:
     """Class index of each label; raise DataError naming the first row whose label is not a class."""
-    values, inverse = np.unique(labels, return_inverse=True)
-    lookup = {name: index for index, name in enumerate(classes)}
-    mapped = np.array([lookup.get(str(v), -1) for v in values], dtype=np.int64)
-    codes = mapped[inverse.reshape(-1)]
-    if (codes < 0).any():
-        row = int(np.flatnonzero(codes < 0)[0])
+    codes = batch.class_codes(classes)
+    unknown = batch.first_unknown_label(codes)
+    if unknown is not None:
         raise DataError(
-            f"{path}: column {column!r}, row {first_row + row}: label {str(labels[row])!r} is not a class of "
+            f"{path}: column {column!r}, row {unknown[0]}: label {unknown[1]!r} is not a class of "
             f"{whose} ({', '.join(classes)})"
         )
     return codes
@@ -390,8 +387,7 @@ def evaluate(
     confusion = np.zeros((len(rule.classes), len(rule.actions)), dtype=np.int64)
     invalid = 0
     for batch in read_feature_batches(data, rule.features, label=label, batch_rows=batch_rows):
-        assert batch.labels is not None
-        codes = label_codes(data, label, batch.labels, rule.classes, batch.first_row)
+        codes = label_codes(data, label, batch, rule.classes)
         assessed = rule.assess(batch.features)
         if rule.invalid_input == "error" and not assessed.valid.all():
             raise DataError(f"{data}: {kernel.invalid_rows_message(assessed.valid, batch.first_row)}")

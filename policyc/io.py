@@ -8,12 +8,14 @@ not counted; in a CSV file, data row r sits on line r + 1).
 
 from __future__ import annotations
 
+import queue
 import re
+import threading
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Literal
+from typing import Literal, TypeVar, cast
 
 import numpy as np
 import pyarrow as pa
@@ -30,6 +32,7 @@ __all__ = [
     "TableWriter",
     "count_rows",
     "data_format",
+    "read_ahead",
     "read_feature_batches",
     "read_table_batches",
 ]
@@ -56,11 +59,35 @@ def data_format(path: Path) -> str:
 
 @dataclass(frozen=True)
 class FeatureBatch:
-    """One batch of rows: features as float64 (n, d), labels as text (or None), and the first row number."""
+    """One batch of rows: features as float64 (n, d), the label column (or None), and the first row number."""
 
     features: np.ndarray
-    labels: np.ndarray | None
+    label_column: pa.Array | None
     first_row: int
+
+    @property
+    def labels(self) -> np.ndarray | None:
+        """The labels as a numpy unicode array."""
+        return None if self.label_column is None else _text_values(self.label_column)
+
+    def class_codes(self, classes: Sequence[str]) -> np.ndarray:
+        """Index into ``classes`` of each row's label, -1 where it is none of them.
+
+        Works on the column's distinct values, so a batch costs one dictionary encoding and K lookups.
+        """
+        assert self.label_column is not None
+        encoded = pc.dictionary_encode(self.label_column)
+        lookup = {name: index for index, name in enumerate(classes)}
+        mapping = np.array([lookup.get(str(v), -1) for v in encoded.dictionary.to_pylist()], dtype=np.int64)
+        return mapping[encoded.indices.to_numpy(zero_copy_only=False)]
+
+    def first_unknown_label(self, codes: np.ndarray) -> tuple[int, str] | None:
+        """(row number, label) of the first row whose code is -1, or None."""
+        unknown = np.flatnonzero(codes < 0)
+        if unknown.size == 0:
+            return None
+        assert self.label_column is not None
+        return self.first_row + int(unknown[0]), str(self.label_column[int(unknown[0])].as_py())
 
 
 def _csv_blocks(path: Path, columns: Sequence[str] | None, types: dict[str, pa.DataType], batch_rows: int):
@@ -95,10 +122,56 @@ def read_table_batches(
         raise DataError(f"{path}: no such file")
     _require_columns(path, fmt, columns)
     if fmt == "parquet":
-        yield from _parquet_batches(path, columns, batch_rows, numeric, text)
+        batches = _parquet_batches(path, columns, batch_rows, numeric, text)
     else:
         types = {name: pa.float64() for name in numeric} | {name: pa.string() for name in text}
-        yield from _csv_batches(path, columns, types, batch_rows)
+        batches = _csv_batches(path, columns, types, batch_rows)
+    yield from batches
+
+
+_END = object()
+T = TypeVar("T")
+
+
+def read_ahead(batches: Iterator[T], depth: int = 1) -> Iterator[T]:
+    """Produce the next batch on a worker thread while the caller works on this one.
+
+    pyarrow's decoding and numpy's copies and arithmetic release the GIL, so the two overlap; at most
+    ``depth`` decoded batches wait in the queue, which keeps memory bounded. An error in the reader
+    is raised in the caller; a caller that stops early stops the reader.
+    """
+    ready: queue.Queue[object] = queue.Queue(maxsize=depth)
+    stop = threading.Event()
+
+    def produce() -> None:
+        try:
+            for batch in batches:
+                while not stop.is_set():
+                    try:
+                        ready.put(batch, timeout=0.1)
+                        break
+                    except queue.Full:
+                        continue
+                if stop.is_set():
+                    return
+            ready.put(_END)
+        except BaseException as error:  # handed to the caller, who raises it
+            ready.put(error)
+
+    worker = threading.Thread(target=produce, name="policyc-read-ahead", daemon=True)
+    worker.start()
+    try:
+        while (item := ready.get()) is not _END:
+            if isinstance(item, BaseException):
+                raise item
+            yield cast(T, item)
+    finally:
+        stop.set()
+        while worker.is_alive():
+            try:
+                ready.get_nowait()
+            except queue.Empty:
+                worker.join(timeout=0.1)
 
 
 def _csv_batches(
@@ -208,6 +281,12 @@ def read_feature_batches(
     ``layout="columns"`` gives the same (n, d) values as the transpose of a C-ordered (d, n) array
     (each feature contiguous), which is cheaper to build and suits per-feature statistics.
     """
+    return read_ahead(_feature_batches(path, features, label, batch_rows, layout))
+
+
+def _feature_batches(
+    path: Path, features: Sequence[str], label: str | None, batch_rows: int, layout: Literal["rows", "columns"]
+) -> Iterator[FeatureBatch]:
     columns = [*features, *([label] if label is not None else [])]
     first_row = 1
     for batch in read_table_batches(path, columns, batch_rows, numeric=features, text=[label] if label else []):
@@ -215,12 +294,11 @@ def read_feature_batches(
             matrix = batch_to_matrix(path, batch, features, first_row)
         else:
             matrix = np.vstack(_feature_columns(path, batch, features, first_row)).T
-        labels = None
+        label_column = None
         if label is not None:
-            label_array = batch.column(columns.index(label))
-            _refuse_nulls(path, label, label_array, first_row)
-            labels = _text_values(label_array)
-        yield FeatureBatch(matrix, labels, first_row)
+            label_column = batch.column(columns.index(label))
+            _refuse_nulls(path, label, label_column, first_row)
+        yield FeatureBatch(matrix, label_column, first_row)
         first_row += batch.num_rows
 
 

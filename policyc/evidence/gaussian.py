@@ -31,7 +31,6 @@ __all__ = [
     "FitProblem",
     "GaussianFit",
     "Moments",
-    "class_codes",
     "fit",
     "fit_covariances",
     "kernel_params",
@@ -97,25 +96,6 @@ class Moments:
     def covariance(self) -> np.ndarray:
         """Maximum-likelihood covariance S / n."""
         return self.scatter / self.count
-
-
-def class_codes(labels: np.ndarray, classes: Sequence[str], first_row: int, ignore_unknown: bool) -> np.ndarray:
-    """Class index per row (-1 for a skipped unknown label); raise FitProblem on an unknown label."""
-    # A binary search among the K sorted class names: O(n log K), where sorting the labels would be O(n log n).
-    names = np.asarray(classes, dtype=str)
-    by_name = np.argsort(names)
-    sorted_names = names[by_name]
-    text = np.asarray(labels, dtype=str)
-    position = np.minimum(np.searchsorted(sorted_names, text), len(names) - 1)
-    codes = np.where(sorted_names[position] == text, by_name[position], -1).astype(np.int64)
-    if not ignore_unknown and (codes < 0).any():
-        row = int(np.flatnonzero(codes < 0)[0])
-        raise FitProblem(
-            "unknown-label",
-            f"row {first_row + row} has label {str(labels[row])!r}, which is not a class",
-            "fix the data, add the class, or set ignore_unknown_labels: true",
-        )
-    return codes
 
 
 Batch = tuple[np.ndarray, np.ndarray]  # (features (n, d), class codes (n,))
@@ -306,16 +286,22 @@ def fit(
         for batch in read_feature_batches(
             path, evidence.features, evidence.training.label, FIT_BATCH_ROWS, layout="columns"
         ):
-            assert batch.labels is not None
-            # a NaN or infinity makes its row sum non-finite; finite values can overflow the sum, hence the recheck
-            if not np.isfinite(batch.features.sum(axis=1)).all():
+            # a NaN or infinity makes the batch's sum non-finite (finite values can overflow it, hence the recheck)
+            if not np.isfinite(batch.features.sum()):
                 bad = ~np.isfinite(batch.features).all(axis=1)
                 if bad.any():
                     row = batch.first_row + int(np.flatnonzero(bad)[0])
                     raise FitProblem(
                         "training-value-not-finite", f"{path}: row {row} has a NaN or infinite feature value"
                     )
-            codes = class_codes(batch.labels, classes, batch.first_row, evidence.training.ignore_unknown_labels)
+            codes = batch.class_codes(classes)
+            unknown = None if evidence.training.ignore_unknown_labels else batch.first_unknown_label(codes)
+            if unknown is not None:
+                raise FitProblem(
+                    "unknown-label",
+                    f"row {unknown[0]} has label {unknown[1]!r}, which is not a class",
+                    "fix the data, add the class, or set ignore_unknown_labels: true",
+                )
             if progress is not None:
                 progress(batch.features.shape[0])
             yield batch.features, codes
