@@ -80,8 +80,7 @@ def _with_decisions(rule: Rule, batch: pa.RecordBatch, assessment: Explanation, 
     columns = [*list(batch.columns), pa.array(action_names[assessment.action], type=pa.string())]
     names = [*list(batch.schema.names), "action"]
     if explain:
-        runner_up = np.where(assessment.runner_up >= 0, assessment.runner_up, 0)
-        runner_names = np.where(assessment.runner_up >= 0, action_names[runner_up], None)
+        runner_names = [rule.actions[i] if i >= 0 else None for i in assessment.runner_up.tolist()]
         columns += [pa.array(assessment.posteriors[:, k]) for k in range(len(rule.classes))]
         columns += [pa.array(assessment.risks[:, a]) for a in range(len(rule.actions))]
         columns += [pa.array(runner_names, type=pa.string()), pa.array(assessment.margin)]

@@ -90,7 +90,9 @@ class FeatureBatch:
         return self.first_row + int(unknown[0]), str(self.label_column[int(unknown[0])].as_py())
 
 
-def _csv_blocks(path: Path, columns: Sequence[str] | None, types: dict[str, pa.DataType], batch_rows: int):
+def _csv_blocks(
+    path: Path, columns: Sequence[str] | None, types: dict[str, pa.DataType], batch_rows: int
+) -> pacsv.CSVStreamingReader:
     read_options = pacsv.ReadOptions(block_size=max(1 << 16, batch_rows * 64))
     convert = pacsv.ConvertOptions(
         include_columns=list(columns) if columns is not None else None,

@@ -193,7 +193,7 @@ def fit_covariances(
     counts = tuple(m.count for m in moments)
     fourth = fourth_moments(means) if shrinkage == "auto" and fourth_moments is not None else None
     if covariance == "tied":
-        pooled = Moments(sum(counts), np.zeros(means.shape[1]), sum(m.scatter for m in moments))
+        pooled = Moments(sum(counts), np.zeros(means.shape[1]), np.sum([m.scatter for m in moments], axis=0))
         base = [pooled.covariance]
         fourth_sums = [float(fourth.sum())] if fourth is not None else [0.0]
         base_counts = [pooled.count]
