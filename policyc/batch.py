@@ -9,7 +9,15 @@ from pathlib import Path
 import numpy as np
 import pyarrow as pa
 
-from policyc.io import DEFAULT_BATCH_ROWS, DataError, TableWriter, batch_to_matrix, read_ahead, read_table_batches
+from policyc.io import (
+    DEFAULT_BATCH_ROWS,
+    DataError,
+    TableWriter,
+    batch_to_matrix,
+    count_rows,
+    read_ahead,
+    read_table_batches,
+)
 from policyc.runtime import Explanation, Rule, kernel
 
 __all__ = ["decide_file", "explain_columns"]
@@ -29,7 +37,7 @@ def decide_file(
     data: Path,
     output: Path,
     explain: bool = False,
-    progress: Callable[[int], None] | None = None,
+    progress: Callable[[int, int | None], None] | None = None,
     batch_rows: int = DEFAULT_BATCH_ROWS,
 ) -> dict[str, int]:
     """Write ``output`` (format from its suffix) with the input columns plus ``action`` (and explanations).
@@ -41,12 +49,13 @@ def decide_file(
     if first is None:
         raise DataError(f"{data}: the file has no rows")
     counts = np.zeros(len(rule.actions), dtype=np.int64)
+    total_rows = count_rows(data)
     with TableWriter(output, first[0].schema).open() as write:
         for batch, actions in chain([first], decided):
             write(batch)
             counts += np.bincount(actions, minlength=len(rule.actions))
             if progress is not None:
-                progress(batch.num_rows)
+                progress(batch.num_rows, total_rows)
     return dict(zip(rule.actions, counts.tolist(), strict=True))
 
 

@@ -7,7 +7,7 @@ import sys
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from pathlib import Path
-from typing import TYPE_CHECKING, NoReturn
+from typing import TYPE_CHECKING, Any, NoReturn
 
 import click
 
@@ -18,7 +18,7 @@ from policyc.compile import compile_policy
 from policyc.diagnostics import PolicyError, render_json, render_text
 from policyc.emit import write_artefact, write_module
 from policyc.inspection import inspection, render_inspection
-from policyc.io import DataError, count_rows
+from policyc.io import DataError
 from policyc.runtime import ArtefactError, InputError, Rule, load_rule
 from policyc.schemas import policy_schema_text
 from policyc.tables import format_matrix
@@ -133,25 +133,41 @@ def schema() -> None:
     click.echo(policy_schema_text(), nl=False)
 
 
+class _ProgressDisplay:
+    """Rows processed, on a terminal's stderr: a bar when the total is known, a running count otherwise."""
+
+    def __init__(self, label: str) -> None:
+        self.label = label
+        self.done = 0
+        self.bar: Any = None
+
+    def __call__(self, rows: int, total: int | None) -> None:
+        self.done += rows
+        if total is not None:
+            if self.bar is None:
+                self.bar = click.progressbar(length=total, label=self.label, file=sys.stderr)
+            self.bar.update(rows)
+        else:
+            click.echo(f"\r{self.label}: {self.done:,} rows", nl=False, err=True)
+
+    def close(self) -> None:
+        if self.bar is not None:
+            self.bar.render_finish()
+        elif self.done:
+            click.echo("", err=True)
+
+
 @contextmanager
-def _progress(label: str, total: int | None) -> Iterator[Callable[[int], None] | None]:
-    """A progress bar on a terminal (stderr); nothing in CI logs or pipes."""
+def _progress(label: str) -> Iterator[_ProgressDisplay | None]:
+    """A progress display on a terminal; nothing in CI logs or pipes."""
     if not sys.stderr.isatty():
         yield None
         return
-    if total is not None:
-        with click.progressbar(length=total, label=label, file=sys.stderr) as bar:
-            yield bar.update
-        return
-    done = 0
-
-    def report(rows: int) -> None:
-        nonlocal done
-        done += rows
-        click.echo(f"\r{label}: {done:,} rows", nl=False, err=True)
-
-    yield report
-    click.echo("", err=True)
+    display = _ProgressDisplay(label)
+    try:
+        yield display
+    finally:
+        display.close()
 
 
 @main.command(name="compile", epilog=CAUTION)
@@ -173,7 +189,7 @@ def _progress(label: str, total: int | None) -> Iterator[Callable[[int], None] |
 def compile_command(policy: Path, rule_file: Path, module_file: Path | None) -> None:
     """Check POLICY, fit its evidence model and write the frozen rule."""
     try:
-        with _progress("fitting", None) as progress:
+        with _progress("fitting") as progress:
             compiled = compile_policy(policy, progress)
     except PolicyError as error:
         _fail(error)
@@ -208,7 +224,7 @@ def decide(rule_file: Path, data: Path, output: Path, explain: bool) -> None:
     """Decide every row of DATA (CSV or Parquet) with RULE_FILE; add an `action` column."""
     rule = _load(rule_file)
     try:
-        with _progress("deciding", count_rows(data) if data.is_file() else None) as progress:
+        with _progress("deciding") as progress:
             counts = decide_file(rule, data, output, explain, progress)
     except (DataError, InputError) as error:
         raise click.ClickException(str(error)) from None

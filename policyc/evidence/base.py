@@ -10,8 +10,8 @@ import numpy as np
 
 __all__ = ["FittedEvidence", "Progress"]
 
-Progress = Callable[[int], None]
-"""Called with the number of rows just processed."""
+Progress = Callable[[int, int | None], None]
+"""Called with the number of rows just processed and the total expected (None when unknown)."""
 
 
 @dataclass(frozen=True)

@@ -22,7 +22,7 @@ from scipy.linalg import solve_triangular
 
 from policyc.evidence.base import FittedEvidence, Progress
 from policyc.hashing import file_sha256
-from policyc.io import read_feature_batches
+from policyc.io import count_rows, read_feature_batches
 from policyc.model import GaussianEvidence, Policy
 
 __all__ = [
@@ -281,6 +281,9 @@ def fit(
     classes = policy.classes
     n_features = len(evidence.features)
     digest = _DigestInBackground(path)
+    passes = 2 if evidence.shrinkage == "auto" else 1  # Ledoit-Wolf reads the data a second time
+    total_rows = count_rows(path)
+    expected = total_rows * passes if total_rows is not None else None
 
     def batches() -> Iterator[Batch]:
         for batch in read_feature_batches(
@@ -303,7 +306,7 @@ def fit(
                     "fix the data, add the class, or set ignore_unknown_labels: true",
                 )
             if progress is not None:
-                progress(batch.features.shape[0])
+                progress(batch.features.shape[0], expected)
             yield batch.features, codes
 
     moments = moments_by_class(batches(), len(classes), n_features)
