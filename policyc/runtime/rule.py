@@ -10,8 +10,8 @@ from typing import Any
 
 import numpy as np
 
-from policyc.runtime import kernel
-from policyc.runtime.artefact import ArtefactError, decode_rule
+from . import kernel
+from .artefact import ArtefactError, decode_rule
 
 __all__ = ["Explanation", "Rule", "load_rule"]
 
