@@ -377,18 +377,19 @@ def training_data_is_present_and_pinned(policy: Policy, context: CheckContext) -
             "paths are relative to the policy file",
         )
         return
+    digest = file_sha256(path)
     if training.sha256 is None:
         yield Diagnostic(
             "training-data-unpinned",
             Severity.INFO,
-            f"training data is not pinned; its sha256 is {file_sha256(path)}",
+            f"training data is not pinned; its sha256 is {digest}",
             ("evidence", "training"),
             "add sha256: so a changed file cannot silently change the rule",
         )
-    elif file_sha256(path) != training.sha256:
+    elif digest != training.sha256:
         yield _error(
             "training-data-hash-mismatch",
-            f"training data {training.data!r} has sha256 {file_sha256(path)}, not the pinned value",
+            f"training data {training.data!r} has sha256 {digest}, not the pinned value",
             ("evidence", "training", "sha256"),
             "if the new data is intended, review it and update the pin",
         )

@@ -51,8 +51,19 @@ def compile_policy(path: str | Path, progress: Progress | None = None) -> Compil
                 )
             ]
         ) from None
+    _require_pinned_data_unchanged(document, policy, fitted)
     rule = rule_from_parts(policy, fitted, document.sha256)
     return CompiledPolicy(rule, policy, document, diagnostics)
+
+
+def _require_pinned_data_unchanged(document: SourceDocument, policy: Policy, fitted: FittedEvidence) -> None:
+    """The check compared the pin with the file before fitting; the fit hashed what it actually read."""
+    pinned = getattr(policy.evidence, "training", None)
+    if pinned is None or pinned.sha256 is None or fitted.training_sha256 == pinned.sha256:
+        return
+    message = f"training data changed while compiling: sha256 {fitted.training_sha256}, not the pinned value"
+    where = ("evidence", "training", "sha256")
+    raise CompileError([document.locate(Diagnostic("training-data-hash-mismatch", Severity.ERROR, message, where))])
 
 
 def _deployment_priors(policy: Policy, fitted: FittedEvidence) -> np.ndarray:

@@ -283,3 +283,15 @@ def test_written_files_are_world_readable(tmp_path: Path) -> None:
     rule = compile_policy(PACKHOUSE).rule
     write_artefact(rule, tmp_path / "p.rule")
     assert (tmp_path / "p.rule").stat().st_mode & 0o777 == 0o644
+
+
+def test_training_data_changed_between_check_and_fit_is_refused(monkeypatch: pytest.MonkeyPatch) -> None:
+    # The check compares the pin with the file; the fit hashes what it actually read. If those differ
+    # (the file was replaced mid-compile), the rule must not claim the pinned data.
+    import policyc.evidence.gaussian
+
+    monkeypatch.setattr(policyc.evidence.gaussian, "file_sha256", lambda path: "0" * 64)
+    with pytest.raises(CompileError) as caught:
+        compile_policy(DEMOS / "packhouse" / "policy.yaml")
+    assert caught.value.codes == ["training-data-hash-mismatch"]
+    assert "changed while compiling" in str(caught.value)
