@@ -13,7 +13,7 @@ import re
 import threading
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Literal, TypeVar, cast
 
@@ -59,11 +59,16 @@ def data_format(path: Path) -> str:
 
 @dataclass(frozen=True)
 class FeatureBatch:
-    """One batch of rows: features as float64 (n, d), the label column (or None), and the first row number."""
+    """One batch of rows: features as float64 (n, d), the label column (or None), and the first row number.
+
+    ``codes`` holds the labels' class indices when the reader was given the classes (computed on the
+    reading thread, see :func:`read_feature_batches`).
+    """
 
     features: np.ndarray
     label_column: pa.Array | None
     first_row: int
+    codes: np.ndarray | None = None
 
     @property
     def labels(self) -> np.ndarray | None:
@@ -75,6 +80,8 @@ class FeatureBatch:
 
         Works on the column's distinct values, so a batch costs one dictionary encoding and K lookups.
         """
+        if self.codes is not None:
+            return self.codes
         assert self.label_column is not None
         encoded = pc.dictionary_encode(self.label_column)
         lookup = {name: index for index, name in enumerate(classes)}
@@ -273,8 +280,12 @@ def read_feature_batches(
     label: str | None = None,
     batch_rows: int = DEFAULT_BATCH_ROWS,
     layout: Literal["rows", "columns"] = "rows",
+    classes: Sequence[str] | None = None,
 ) -> Iterator[FeatureBatch]:
     """Yield features as float64 (n, d) arrays in ``features`` order, with labels as text when asked.
+
+    Batches are produced on a reading thread one ahead of the caller (:func:`read_ahead`); with
+    ``classes`` the labels' class indices are computed there too (``FeatureBatch.codes``).
 
     Missing values (empty CSV cells, Parquet nulls) are errors naming the column and row;
     NaN and infinity pass through for the caller to judge.
@@ -283,11 +294,16 @@ def read_feature_batches(
     ``layout="columns"`` gives the same (n, d) values as the transpose of a C-ordered (d, n) array
     (each feature contiguous), which is cheaper to build and suits per-feature statistics.
     """
-    return read_ahead(_feature_batches(path, features, label, batch_rows, layout))
+    return read_ahead(_feature_batches(path, features, label, batch_rows, layout, classes))
 
 
 def _feature_batches(
-    path: Path, features: Sequence[str], label: str | None, batch_rows: int, layout: Literal["rows", "columns"]
+    path: Path,
+    features: Sequence[str],
+    label: str | None,
+    batch_rows: int,
+    layout: Literal["rows", "columns"],
+    classes: Sequence[str] | None,
 ) -> Iterator[FeatureBatch]:
     columns = [*features, *([label] if label is not None else [])]
     first_row = 1
@@ -300,7 +316,10 @@ def _feature_batches(
         if label is not None:
             label_column = batch.column(columns.index(label))
             _refuse_nulls(path, label, label_column, first_row)
-        yield FeatureBatch(matrix, label_column, first_row)
+        batch_out = FeatureBatch(matrix, label_column, first_row)
+        if classes is not None and label_column is not None:
+            batch_out = replace(batch_out, codes=batch_out.class_codes(classes))
+        yield batch_out
         first_row += batch.num_rows
 
 

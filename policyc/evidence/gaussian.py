@@ -287,7 +287,7 @@ def fit(
 
     def batches() -> Iterator[Batch]:
         for batch in read_feature_batches(
-            path, evidence.features, evidence.training.label, FIT_BATCH_ROWS, layout="columns"
+            path, evidence.features, evidence.training.label, FIT_BATCH_ROWS, layout="columns", classes=classes
         ):
             # a NaN or infinity makes the batch's sum non-finite (finite values can overflow it, hence the recheck)
             if not np.isfinite(batch.features.sum()):
