@@ -302,7 +302,8 @@ def fit(
             if unknown is not None:
                 raise FitProblem(
                     "unknown-label",
-                    f"row {unknown[0]} has label {unknown[1]!r}, which is not a class",
+                    f"{path}: column {evidence.training.label!r}, row {unknown[0]}: "
+                    f"label {unknown[1]!r} is not a class",
                     "fix the data, add the class, or set ignore_unknown_labels: true",
                 )
             if progress is not None:
