@@ -32,7 +32,7 @@ from policyc.source import parse_source
 
 ROOT = Path(__file__).resolve().parent.parent
 FIXTURES = ROOT / "tests" / "fixtures" / "check"
-DEMOS = sorted((ROOT / "policies-demo").glob("*/policy.yaml"))
+DEMOS = sorted((ROOT / "policies-demo").glob("*/policy*.yaml"))
 RULES_BY_NAME = {rule.__name__: rule for rule in RULES}
 
 
@@ -100,7 +100,7 @@ def test_every_rule_has_a_clean_case_and_a_case_that_fires() -> None:
         assert any(counts), f"{rule_name} has no case that fires"
 
 
-@pytest.mark.parametrize("path", DEMOS, ids=[p.parent.name for p in DEMOS])
+@pytest.mark.parametrize("path", DEMOS, ids=[f"{p.parent.name}/{p.stem}" for p in DEMOS])
 def test_demo_policies_pass_every_rule(path: Path) -> None:
     report = check_file(path)
     assert report.policy is not None

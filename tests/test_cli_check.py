@@ -12,7 +12,7 @@ from click.testing import CliRunner, Result
 from policyc.cli import main
 
 ROOT = Path(__file__).resolve().parent.parent
-DEMOS = sorted((ROOT / "policies-demo").glob("*/policy.yaml"))
+DEMOS = sorted((ROOT / "policies-demo").glob("*/policy*.yaml"))
 SCHEMA_FILE = ROOT / "schemas" / "policy.schema.json"
 
 GOOD = """\

@@ -30,7 +30,7 @@ from policyc.emit.artefact import artefact_bytes
 from policyc.runtime import FORMAT_NAME, FORMAT_VERSION, load_rule
 from policyc.runtime.artefact import decode_rule, encode_rule
 
-DEMO_POLICIES = sorted(DEMOS.glob("*/policy.yaml"))
+DEMO_POLICIES = sorted(DEMOS.glob("*/policy*.yaml"))
 
 
 @pytest.mark.parametrize("path", DEMO_POLICIES, ids=lambda p: p.parent.name)

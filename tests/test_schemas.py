@@ -16,7 +16,7 @@ from policyc.source import load_source
 
 ROOT = Path(__file__).resolve().parent.parent
 SCHEMA_FILE = ROOT / "schemas" / "policy.schema.json"
-DEMOS = sorted((ROOT / "policies-demo").glob("*/policy.yaml"))
+DEMOS = sorted((ROOT / "policies-demo").glob("*/policy*.yaml"))
 
 
 def as_json(data: Any) -> Any:
