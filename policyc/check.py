@@ -489,6 +489,7 @@ class CheckReport:
     def has_errors(self) -> bool:
         return any(d.is_error for d in self.diagnostics)
 
+    @property
     def has_warnings(self) -> bool:
         return any(d.severity is Severity.WARNING for d in self.diagnostics)
 

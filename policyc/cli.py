@@ -84,7 +84,7 @@ def check(policies: tuple[Path, ...], output_format: str, strict: bool, show: bo
         source = sys.stdout.isatty() if show_source is None else show_source
         for report in reports:
             _echo_report(report, source, show)
-    failed = any(r.has_errors or (strict and r.has_warnings()) for r in reports)
+    failed = any(r.has_errors or (strict and r.has_warnings) for r in reports)
     sys.exit(1 if failed else 0)
 
 

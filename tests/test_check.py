@@ -105,7 +105,7 @@ def test_demo_policies_pass_every_rule(path: Path) -> None:
     report = check_file(path)
     assert report.policy is not None
     assert not report.has_errors, report.diagnostics
-    assert not report.has_warnings(), report.diagnostics
+    assert not report.has_warnings, report.diagnostics
 
 
 def test_there_are_demo_policies() -> None:
