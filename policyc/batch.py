@@ -20,7 +20,16 @@ from policyc.io import (
 )
 from policyc.runtime import Explanation, Rule, kernel
 
-__all__ = ["decide_file", "explain_columns"]
+__all__ = ["assess_batch", "decide_file", "explain_columns"]
+
+
+def assess_batch(rule: Rule, features: np.ndarray, data: Path, first_row: int, whose: str = "") -> Explanation:
+    """The rule's assessment of a batch of a file's rows; under ``invalid_input: error`` an invalid row
+    is a DataError naming its row in the file (rows counted from 1, the header not counted)."""
+    assessment = rule.assess(features)
+    if rule.invalid_input == "error" and not assessment.valid.all():
+        raise DataError(f"{data}: {whose}{kernel.invalid_rows_message(assessment.valid, first_row)}")
+    return assessment
 
 
 def explain_columns(rule: Rule) -> list[str]:
@@ -68,9 +77,7 @@ def _decided_batches(
         if first_row == 1:
             _require_columns(rule, data, batch.schema.names, added)
         features = batch_to_matrix(data, batch, rule.features, first_row)
-        assessment = rule.assess(features)
-        if rule.invalid_input == "error" and not assessment.valid.all():
-            raise DataError(f"{data}: {kernel.invalid_rows_message(assessment.valid, first_row)}")
+        assessment = assess_batch(rule, features, data, first_row)
         yield _with_decisions(rule, batch, assessment, explain), assessment.action
         first_row += batch.num_rows
 

@@ -90,6 +90,7 @@ from typing import Any
 import numpy as np
 from scipy.stats import qmc
 
+from policyc.batch import assess_batch
 from policyc.bootstrap import (
     DEFAULT_CONFIDENCE,
     DEFAULT_RESAMPLES,
@@ -101,7 +102,7 @@ from policyc.evaluate import label_codes
 from policyc.io import DEFAULT_BATCH_ROWS, DataError, read_feature_batches
 from policyc.loading import LoadedRule, identity
 from policyc.moments import moments_digest
-from policyc.runtime import Rule, kernel
+from policyc.runtime import Rule
 from policyc.thresholds import posterior_intervals
 
 __all__ = [
@@ -633,8 +634,8 @@ class _DataTally:
 
     def add(self, X: tuple[np.ndarray, np.ndarray], codes: np.ndarray | None, path: Path, first_row: int) -> None:
         """Decide one batch with both rules; ``X`` holds each rule's feature columns."""
-        before = _assess(self.old, X[0], path, first_row, "old")
-        after = _assess(self.new, X[1], path, first_row, "new")
+        before = assess_batch(self.old, X[0], path, first_row, "old rule: ")
+        after = assess_batch(self.new, X[1], path, first_row, "new rule: ")
         n_new = len(self.new.actions)
         self.flips += np.bincount(
             before.action * n_new + after.action, minlength=len(self.old.actions) * n_new
@@ -652,13 +653,6 @@ class _DataTally:
                 k = len(self.new.classes)
                 flat = (mapped * n_new + after.action) * k + codes
                 self.cells += np.bincount(flat, minlength=self.cells.size).reshape(self.cells.shape)
-
-
-def _assess(rule: Rule, X: np.ndarray, path: Path, first_row: int, side: str) -> Any:
-    explanation = rule.assess(X)
-    if rule.invalid_input == "error" and not explanation.valid.all():
-        raise DataError(f"{path}: {side} rule: {kernel.invalid_rows_message(explanation.valid, first_row)}")
-    return explanation
 
 
 def _batches(

@@ -55,6 +55,7 @@ from typing import Any
 
 import numpy as np
 
+from policyc.batch import assess_batch
 from policyc.bootstrap import (
     DEFAULT_CONFIDENCE,
     DEFAULT_RESAMPLES,
@@ -64,7 +65,7 @@ from policyc.bootstrap import (
 )
 from policyc.io import DEFAULT_BATCH_ROWS, DataError, FeatureBatch, read_feature_batches
 from policyc.loading import LoadedRule, identity
-from policyc.runtime import Rule, kernel
+from policyc.runtime import Rule
 from policyc.simplex import reject_reach_value
 
 __all__ = [
@@ -388,9 +389,7 @@ def evaluate(
     invalid = 0
     for batch in read_feature_batches(data, rule.features, label=label, batch_rows=batch_rows):
         codes = label_codes(data, label, batch, rule.classes)
-        assessed = rule.assess(batch.features)
-        if rule.invalid_input == "error" and not assessed.valid.all():
-            raise DataError(f"{data}: {kernel.invalid_rows_message(assessed.valid, batch.first_row)}")
+        assessed = assess_batch(rule, batch.features, data, batch.first_row)
         invalid += int((~assessed.valid).sum())
         confusion += np.bincount(codes * len(rule.actions) + assessed.action, minlength=confusion.size).reshape(
             confusion.shape
