@@ -194,3 +194,16 @@ def read_csv_columns(path: Path, columns: Sequence[str]) -> np.ndarray:
     with path.open(newline="", encoding="utf-8") as handle:
         rows = list(csv.DictReader(handle))
     return np.array([[float(row[c]) for c in columns] for row in rows], dtype=np.float64)
+
+
+def two_class_text(**overrides: Any) -> str:
+    """A two-class 0-1 loss policy (classes c0, c1; actions a0, a1) on log-likelihood columns."""
+    classes = ["c0", "c1"]
+    settings: dict[str, Any] = {
+        "classes": classes,
+        "priors": [0.5, 0.5],
+        "actions": ["a0", "a1"],
+        "loss": np.array([[0.0, 1.0], [1.0, 0.0]]),
+        "evidence": loglik_evidence(classes),
+    }
+    return policy_text(**(settings | overrides))

@@ -12,7 +12,7 @@ import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 import pytest
 from click.testing import CliRunner, Result
-from helpers import CLAIMS, DEMOS, PACKHOUSE, loglik_evidence, policy_text, read_csv_columns
+from helpers import CLAIMS, DEMOS, PACKHOUSE, read_csv_columns, two_class_text
 
 from policyc.cli import main
 from policyc.runtime import Rule, load_rule
@@ -61,15 +61,10 @@ def test_compile_writes_rule_and_module_and_prints_the_hash(tmp_path: Path) -> N
 
 
 def test_compile_reports_policy_errors_with_locations(tmp_path: Path) -> None:
-    classes = ["c0", "c1"]
     policy = tmp_path / "policy.yaml"
     policy.write_text(
-        policy_text(
-            classes=classes,
+        two_class_text(
             priors=[0.6, 0.6],
-            actions=["a0", "a1"],
-            loss=np.array([[0.0, 1.0], [1.0, 0.0]]),
-            evidence=loglik_evidence(classes),
         ),
         encoding="utf-8",
     )
@@ -173,16 +168,9 @@ def test_decide_refuses_an_existing_action_column(packhouse_file: Path, tmp_path
 
 
 def test_decide_names_invalid_rows_under_invalid_input_error(tmp_path: Path) -> None:
-    classes = ["c0", "c1"]
     policy = tmp_path / "policy.yaml"
     policy.write_text(
-        policy_text(
-            classes=classes,
-            priors=[0.5, 0.5],
-            actions=["a0", "a1"],
-            loss=np.array([[0.0, 1.0], [1.0, 0.0]]),
-            evidence=loglik_evidence(classes),
-        ),
+        two_class_text(),
         encoding="utf-8",
     )
     rule_file = tmp_path / "p.rule"

@@ -20,6 +20,7 @@ from helpers import (
     policy_text,
     posterior_evidence,
     read_csv_columns,
+    two_class_text,
 )
 
 import policyc.atomic
@@ -187,13 +188,8 @@ def test_training_priors_are_the_class_frequencies(tmp_path: Path) -> None:
 
 
 def test_policy_errors_raise_with_codes_and_lines(tmp_path: Path) -> None:
-    classes = ["c0", "c1"]
-    text = policy_text(
-        classes=classes,
+    text = two_class_text(
         priors=[0.6, 0.6],
-        actions=["a0", "a1"],
-        loss=np.array([[0.0, 1.0], [1.0, 0.0]]),
-        evidence=loglik_evidence(classes),
     )
     with pytest.raises(PolicyError) as info:
         compile_text(tmp_path, text)

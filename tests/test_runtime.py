@@ -18,12 +18,12 @@ from helpers import (
     DEMOS,
     PACKHOUSE,
     gaussian_rule,
-    loglik_evidence,
     policy_text,
     posterior_evidence,
     random_spd,
     read_csv_columns,
     rule_from_text,
+    two_class_text,
 )
 
 from policyc.compile import compile_policy
@@ -315,14 +315,8 @@ def test_invalid_rows_raise_naming_the_rows_under_invalid_input_error(packhouse:
 
 
 def test_log_likelihood_evidence_treats_plus_infinity_as_invalid_and_minus_infinity_as_impossible() -> None:
-    classes = ["c0", "c1"]
     rule = rule_from_text(
-        policy_text(
-            classes=classes,
-            priors=[0.5, 0.5],
-            actions=["a0", "a1"],
-            loss=np.array([[0.0, 1.0], [1.0, 0.0]]),
-            evidence=loglik_evidence(classes),
+        two_class_text(
             reject_cost=0.2,
             invalid_input="reject",
         )
