@@ -15,8 +15,8 @@ __all__ = ["__version__", "check_file", "compile_policy", "load_rule"]
 __version__ = "0.1.0"
 
 _LAZY = {
-    "check_file": "policyc.check",
-    "compile_policy": "policyc.compile",
+    "check_file": "policyc.language.checks",
+    "compile_policy": "policyc.compiler.build",
     "load_rule": "policyc.runtime",
 }
 

@@ -9,7 +9,7 @@ from pathlib import Path
 import numpy as np
 import pyarrow as pa
 
-from policyc.io import (
+from policyc.evidence.io import (
     DEFAULT_BATCH_ROWS,
     DataError,
     TableWriter,

@@ -13,19 +13,19 @@ import click
 
 from policyc import __version__
 from policyc.batch import decide_file
-from policyc.check import CheckReport, action_regions, check_file
-from policyc.compile import compile_policy
-from policyc.diagnostics import PolicyError, render_json, render_text
-from policyc.emit import write_artefact, write_module
-from policyc.inspection import inspection, render_inspection
-from policyc.io import DataError
+from policyc.compiler import write_artefact, write_module
+from policyc.compiler.build import compile_policy
+from policyc.evidence.io import DataError
+from policyc.language.checks import CheckReport, action_regions, check_file
+from policyc.language.diagnostics import PolicyError, render_json, render_text
+from policyc.render import format_matrix
+from policyc.review.inspect import inspection, render_inspection
 from policyc.runtime import ArtefactError, InputError, Rule, load_rule
 from policyc.schemas import policy_schema_text
-from policyc.tables import format_matrix
 
 if TYPE_CHECKING:
-    from policyc.loading import LoadedRule
-    from policyc.plot import FigureSize
+    from policyc.review.plot import FigureSize
+    from policyc.review.shared.loading import LoadedRule
 
 __all__ = ["main"]
 
@@ -289,7 +289,7 @@ SEED_OPTION = click.option(
 
 def _load_subject(path: Path) -> LoadedRule:
     """A policy file (checked and compiled in memory) or a rule file; exit 1 with diagnostics on errors."""
-    from policyc.loading import load_rule_or_policy
+    from policyc.review.shared.loading import load_rule_or_policy
 
     try:
         loaded = load_rule_or_policy(path)
@@ -306,7 +306,7 @@ def _emit_report(text: str, report_file: Path | None) -> None:
     if report_file is None:
         click.echo(text, nl=not text.endswith("\n"))
         return
-    from policyc.atomic import write_bytes_atomically
+    from policyc.files import write_bytes_atomically
 
     write_bytes_atomically(report_file, text.encode("utf-8"))
     click.echo(f"report -> {report_file}", err=True)
@@ -380,8 +380,8 @@ def diff_command(
     and what that costs. Exit 0 when every gate passes, 1 when a gate fails or an input is
     unusable, 2 on usage errors.
     """
-    from policyc.diff import GateLimits, diff
-    from policyc.diff_report import render_diff
+    from policyc.review.diff import GateLimits, diff
+    from policyc.review.diff.render import render_diff
 
     limits = GateLimits(max_flip_rate, max_risk_increase, max_reject_rate, max_simplex_change)
     if label is not None and data is None:
@@ -441,8 +441,8 @@ def evaluate(
     report adds a calibration check of the rule's (prior-corrected) posteriors. Exit 0, or 1
     when the rule or the data cannot be used.
     """
-    from policyc.evaluate import evaluate as run_evaluation
-    from policyc.evaluate_report import render_evaluation
+    from policyc.review.evaluate.evaluation import evaluate as run_evaluation
+    from policyc.review.evaluate.render import render_evaluation
 
     loaded = _load_subject(rule_file)
     try:
@@ -451,13 +451,13 @@ def evaluate(
         raise click.ClickException(str(error)) from None
     _emit_report(render_evaluation(result, output_format), report_file)
     if plot_curve is not None:
-        from policyc.plot import risk_reject_curve
+        from policyc.review.plot import risk_reject_curve
 
         _draw(lambda: risk_reject_curve(result, plot_curve))
 
 
 def _draw(draw: Callable[[], Path]) -> None:
-    from policyc.plot import PlotError
+    from policyc.review.plot import PlotError
 
     try:
         written = draw()
@@ -469,7 +469,7 @@ def _draw(draw: Callable[[], Path]) -> None:
 
 
 def _size(ctx: click.Context, param: click.Parameter, value: str | None) -> FigureSize:
-    from policyc.plot import DEFAULT_SIZE, PlotError, parse_size
+    from policyc.review.plot import DEFAULT_SIZE, PlotError, parse_size
 
     if value is None:
         return DEFAULT_SIZE
@@ -549,7 +549,7 @@ def plot_regions(
     size: FigureSize,
 ) -> None:
     """Decision regions of a gaussian RULE over two features, the others held fixed."""
-    from policyc.plot import decision_regions
+    from policyc.review.plot import decision_regions
 
     if (points is None) != (label is None):
         raise click.UsageError("--points and --label go together")
@@ -568,7 +568,7 @@ def plot_regions(
 @SIZE_OPTION
 def plot_simplex(rule_file: Path, compare: Path | None, picture: Path, size: FigureSize) -> None:
     """Decision regions of a three-class RULE on the posterior simplex (ternary map)."""
-    from policyc.plot import simplex_map
+    from policyc.review.plot import simplex_map
 
     loaded = _load_subject(rule_file)
     older = _load_subject(compare) if compare is not None else None
@@ -583,8 +583,8 @@ def plot_simplex(rule_file: Path, compare: Path | None, picture: Path, size: Fig
 @SIZE_OPTION
 def plot_curve(rule_file: Path, data: Path, label: str, picture: Path, size: FigureSize) -> None:
     """The risk-reject curve of RULE on labelled DATA (Chow's trade-off)."""
-    from policyc.evaluate import evaluate as run_evaluation
-    from policyc.plot import risk_reject_curve
+    from policyc.review.evaluate.evaluation import evaluate as run_evaluation
+    from policyc.review.plot import risk_reject_curve
 
     loaded = _load_subject(rule_file)
     try:
@@ -611,7 +611,7 @@ def priors(rule_file: Path, data: Path, output_format: str, confidence: float) -
     Compares it with the rule's priors: a small p-value says the mix has changed and the
     rule's decisions may no longer be the cheapest; review the priors before recompiling.
     """
-    from policyc.priors import estimate_priors
+    from policyc.review.priors import estimate_priors
 
     rule = _load(rule_file)
     try:

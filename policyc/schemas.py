@@ -5,8 +5,8 @@ from __future__ import annotations
 import json
 from typing import Any
 
-from policyc.manifest import RuleManifest
-from policyc.model import Policy
+from policyc.compiler.manifest import RuleManifest
+from policyc.language.model import Policy
 
 __all__ = ["MANIFEST_SCHEMA_ID", "POLICY_SCHEMA_ID", "manifest_schema_text", "policy_schema", "policy_schema_text"]
 

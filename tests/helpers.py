@@ -23,13 +23,13 @@ from typing import Any
 
 import numpy as np
 
-from policyc.compile import CompiledPolicy, compile_policy, rule_from_parts
-from policyc.emit import write_module
+from policyc.compiler import write_module
+from policyc.compiler.build import CompiledPolicy, compile_policy, rule_from_parts
 from policyc.evidence import FittedEvidence, fit_evidence
 from policyc.evidence.gaussian import GaussianFit, kernel_params
-from policyc.model import build_policy
+from policyc.language.model import build_policy
+from policyc.language.source import parse_source
 from policyc.runtime import Rule
-from policyc.source import parse_source
 
 ROOT = Path(__file__).resolve().parent.parent
 DEMOS = ROOT / "policies-demo"

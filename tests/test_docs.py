@@ -5,7 +5,7 @@ from __future__ import annotations
 import re
 from pathlib import Path
 
-from policyc.model import _PYDANTIC_CODES
+from policyc.language.model import _PYDANTIC_CODES
 
 ROOT = Path(__file__).resolve().parents[1]
 EMITTING_CALL = re.compile(

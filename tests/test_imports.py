@@ -10,8 +10,8 @@ from pathlib import Path
 
 from helpers import DEMOS, PACKHOUSE, ROOT, read_csv_columns
 
-from policyc.compile import compile_policy
-from policyc.emit import write_artefact
+from policyc.compiler import write_artefact
+from policyc.compiler.build import compile_policy
 
 RUNTIME = ROOT / "policyc" / "runtime"
 
@@ -23,13 +23,13 @@ FORBIDDEN = {
     "jsonschema",
     "pyarrow",
     "sklearn",
-    "policyc.check",
-    "policyc.compile",
-    "policyc.model",
-    "policyc.source",
+    "policyc.language.checks",
+    "policyc.compiler.build",
+    "policyc.language.model",
+    "policyc.language.source",
     "policyc.evidence",
-    "policyc.emit",
-    "policyc.io",
+    "policyc.compiler",
+    "policyc.evidence.io",
     "policyc.cli",
 }
 

@@ -11,8 +11,8 @@ from typing import Any
 import pytest
 from jsonschema import Draft202012Validator, ValidationError
 
+from policyc.language.source import load_source
 from policyc.schemas import POLICY_SCHEMA_ID, policy_schema, policy_schema_text
-from policyc.source import load_source
 
 ROOT = Path(__file__).resolve().parent.parent
 SCHEMA_FILE = ROOT / "schemas" / "policy.schema.json"

@@ -29,8 +29,8 @@ import numpy as np
 import pytest
 import uvicorn
 
-from policyc.compile import compile_policy
-from policyc.emit.artefact import write_artefact
+from policyc.compiler.artefact import write_artefact
+from policyc.compiler.build import compile_policy
 from policyc.runtime import Rule, load_rule
 
 ROOT = Path(__file__).resolve().parent.parent

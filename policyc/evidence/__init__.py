@@ -9,7 +9,7 @@ from pathlib import Path
 
 from policyc.evidence import gaussian, supplied
 from policyc.evidence.base import FittedEvidence, Progress
-from policyc.model import GaussianEvidence, Policy
+from policyc.language.model import GaussianEvidence, Policy
 
 __all__ = ["FittedEvidence", "Progress", "fit_evidence"]
 
@@ -17,7 +17,7 @@ __all__ = ["FittedEvidence", "Progress", "fit_evidence"]
 def fit_evidence(policy: Policy, base_dir: Path | None, progress: Progress | None = None) -> FittedEvidence:
     """Fit (gaussian) or freeze (posterior, log-likelihood) the policy's evidence model.
 
-    Raises :class:`policyc.evidence.gaussian.FitProblem` or :class:`policyc.io.DataError`.
+    Raises :class:`policyc.evidence.gaussian.FitProblem` or :class:`policyc.evidence.io.DataError`.
     """
     if isinstance(policy.evidence, GaussianEvidence):
         return gaussian.fit(policy, policy.evidence, base_dir, progress)

@@ -21,9 +21,9 @@ import numpy as np
 from scipy.linalg import solve_triangular
 
 from policyc.evidence.base import FittedEvidence, Progress
-from policyc.hashing import file_sha256
-from policyc.io import count_rows, read_feature_batches
-from policyc.model import GaussianEvidence, Policy
+from policyc.evidence.io import count_rows, read_feature_batches
+from policyc.files import file_sha256
+from policyc.language.model import GaussianEvidence, Policy
 
 __all__ = [
     "CONDITION_LIMIT",

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 
 from policyc.evidence.base import FittedEvidence
-from policyc.model import LogLikelihoodEvidence, Policy, PosteriorEvidence
+from policyc.language.model import LogLikelihoodEvidence, Policy, PosteriorEvidence
 
 __all__ = ["freeze"]
 

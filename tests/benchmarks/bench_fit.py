@@ -79,7 +79,7 @@ def task_read(path: Path, batch_rows: int) -> dict[str, float]:
     import numpy as np
     import pyarrow.parquet as pq
 
-    # The reader options policyc.io uses (no pre-buffering, a small read buffer: bounded memory); they are
+    # The reader options policyc.evidence.io uses (no pre-buffering, a small read buffer: bounded memory); they are
     # also pyarrow's fastest here, about twice as fast as the defaults on this file.
     options = {"pre_buffer": False, "buffer_size": 1 << 16}
     start = time.perf_counter()
@@ -101,8 +101,8 @@ def task_read(path: Path, batch_rows: int) -> dict[str, float]:
 
 def task_fit(path: Path, batch_rows: int | None) -> dict[str, float]:
     import policyc.evidence.gaussian as gaussian
-    from policyc.model import build_policy
-    from policyc.source import parse_source
+    from policyc.language.model import build_policy
+    from policyc.language.source import parse_source
 
     loss = {f"say_{a}": {c: 0 if a == c else 1 for c in CLASSES} for a in CLASSES}
     text = "\n".join(

@@ -9,8 +9,8 @@ import pytest
 import scipy.stats
 from helpers import compile_text, loglik_evidence, names, policy_text, posterior_evidence
 
+from policyc.geometry.intervals import posterior_intervals
 from policyc.runtime import Rule
-from policyc.thresholds import posterior_intervals
 
 TIE_GUARD = 1e-9
 

@@ -12,8 +12,8 @@ from helpers import compile_text, loglik_evidence, policy_text, posterior_eviden
 from hypothesis import HealthCheck, assume, given, settings
 from hypothesis import strategies as st
 
+from policyc.geometry.intervals import posterior_intervals
 from policyc.runtime import Rule
-from policyc.thresholds import posterior_intervals
 
 CLASSES = ["w1", "w2"]
 ACTIONS = ["decide_w1", "decide_w2"]

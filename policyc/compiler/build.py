@@ -1,0 +1,133 @@
+"""Policy + fitted evidence -> Rule: named arrays and a manifest, nothing else."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from policyc import __version__
+from policyc.compiler.manifest import RuleManifest
+from policyc.evidence import FittedEvidence, Progress, fit_evidence
+from policyc.evidence.gaussian import FitProblem
+from policyc.evidence.io import DataError
+from policyc.language.checks import load_checked_policy
+from policyc.language.diagnostics import CompileError, Diagnostic, Severity
+from policyc.language.model import Policy
+from policyc.language.source import SourceDocument
+from policyc.runtime import FORMAT_NAME, FORMAT_VERSION, Rule
+from policyc.runtime.artefact import decode_rule, encode_rule
+
+__all__ = ["CompiledPolicy", "compile_policy", "rule_from_parts"]
+
+
+@dataclass(frozen=True)
+class CompiledPolicy:
+    """The compiled rule with what produced it, for reports."""
+
+    rule: Rule
+    policy: Policy
+    document: SourceDocument
+    diagnostics: tuple[Diagnostic, ...]
+
+
+def compile_policy(path: str | Path, progress: Progress | None = None) -> CompiledPolicy:
+    """Check, fit and compile a policy file. Raises a PolicyError subclass on any error."""
+    document, policy, diagnostics = load_checked_policy(path)
+    try:
+        fitted = fit_evidence(policy, document.base_dir, progress)
+    except FitProblem as problem:
+        where = ("evidence", "training") if problem.code in {"unknown-label", "class-without-rows"} else ("evidence",)
+        raise CompileError(
+            [document.locate(Diagnostic(problem.code, Severity.ERROR, problem.message, where, hint=problem.hint))]
+        ) from None
+    except DataError as error:
+        raise CompileError(
+            [
+                document.locate(
+                    Diagnostic("training-data-unusable", Severity.ERROR, str(error), ("evidence", "training", "data"))
+                )
+            ]
+        ) from None
+    _require_pinned_data_unchanged(document, policy, fitted)
+    rule = rule_from_parts(policy, fitted, document.sha256)
+    return CompiledPolicy(rule, policy, document, diagnostics)
+
+
+def _require_pinned_data_unchanged(document: SourceDocument, policy: Policy, fitted: FittedEvidence) -> None:
+    """The check compared the pin with the file before fitting; the fit hashed what it actually read."""
+    pinned = getattr(policy.evidence, "training", None)
+    if pinned is None or pinned.sha256 is None or fitted.training_sha256 == pinned.sha256:
+        return
+    message = f"training data changed while compiling: sha256 {fitted.training_sha256}, not the pinned value"
+    where = ("evidence", "training", "sha256")
+    raise CompileError([document.locate(Diagnostic("training-data-hash-mismatch", Severity.ERROR, message, where))])
+
+
+def _deployment_priors(policy: Policy, fitted: FittedEvidence) -> np.ndarray:
+    if policy.priors == "training":
+        assert fitted.training_counts is not None
+        counts = np.array([fitted.training_counts[name] for name in policy.classes], dtype=float)
+        return counts / counts.sum()
+    stated = np.array([policy.priors[name] for name in policy.classes])
+    return stated / stated.sum()  # the check allowed |Σ - 1| <= 1e-6; make it exact
+
+
+def rule_from_parts(policy: Policy, fitted: FittedEvidence, policy_sha256: str) -> Rule:
+    """Assemble the Rule: log priors, the loss matrix with the reject row last, evidence arrays, manifest."""
+    priors = _deployment_priors(policy, fitted)
+    loss = policy.loss_matrix()
+    actions = list(policy.actions)
+    reject_cost = policy.reject_cost()
+    if reject_cost is not None:
+        assert policy.reject is not None
+        # the reject option as one more action of constant risk d: R(reject|x) = Σ_k d P(k|x) = d
+        # (the kernel sets constant rows' risk to d exactly)
+        loss = np.vstack([loss, np.full(len(policy.classes), reject_cost)])
+        actions.append(policy.reject.action)
+    with np.errstate(divide="ignore"):
+        log_priors = np.log(priors)
+    params = {"log_priors": log_priors, "loss": loss, **fitted.params}
+    manifest = _manifest(policy, fitted, priors, actions, reject_cost, policy_sha256)
+    # Round-trip through the artefact encoding: the in-memory rule is exactly the one a file holds.
+    encoded_manifest, encoded_params = decode_rule(encode_rule(manifest, params), origin=policy.policy)
+    return Rule(encoded_manifest, encoded_params, origin=policy.policy)
+
+
+def _manifest(
+    policy: Policy,
+    fitted: FittedEvidence,
+    priors: np.ndarray,
+    actions: list[str],
+    reject_cost: float | None,
+    policy_sha256: str,
+) -> dict[str, Any]:
+    counts = fitted.training_counts
+    manifest = RuleManifest(
+        format=FORMAT_NAME,
+        format_version=FORMAT_VERSION,
+        policy=policy.policy,
+        revision=policy.revision,
+        description=policy.description,
+        classes=list(policy.classes),
+        actions=actions,
+        reject_action=policy.reject.action if policy.reject is not None else None,
+        reject_cost=reject_cost,
+        features=list(fitted.features),
+        priors=dict(zip(policy.classes, priors.tolist(), strict=True)),
+        priors_source="training" if policy.priors == "training" else "policy",
+        training_class_counts=counts,
+        training_priors=(
+            {name: counts[name] / sum(counts.values()) for name in policy.classes} if counts is not None else None
+        ),
+        loss_stated_as=policy.matrix_key,
+        loss_unit=policy.loss_unit,
+        invalid_input=policy.invalid_input,
+        evidence=fitted.description,
+        policy_sha256=policy_sha256,
+        training_sha256=fitted.training_sha256,
+        policyc_version=__version__,
+    )
+    return manifest.model_dump(mode="json", exclude_none=False, exclude={"arrays", "content_sha256"})

@@ -1,0 +1,60 @@
+"""Loss matrices on the probability simplex: where each row is the minimum-risk choice.
+
+Used by the consistency checks (unreachable actions, a reject option that never fires)
+and by the reports (the reach of the reject option on the risk-reject curve).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy.optimize import linprog
+
+from policyc.geometry.decisions import margin_tolerance
+
+__all__ = ["margin_tolerance", "reject_reach_value", "winning_margin"]
+
+
+def winning_margin(loss: np.ndarray, row: int) -> tuple[float, np.ndarray]:
+    """Largest margin t by which ``row`` beats every other row at some posterior, and that posterior.
+
+    Linear program over the probability simplex:
+    maximise t  s.t.  (λ_row - λ_b)·p + t ≤ 0 for all b ≠ row,  Σ p = 1,  p ≥ 0.
+    The row is the minimum-risk choice on a set of positive measure iff t > 0.
+    For the reject row (constant d) this t equals V - d, where
+    V = max_p min_a λ_a·p is the value of the loss matrix as a zero-sum game.
+
+    Parameters
+    ----------
+    loss : array of shape (n_rows, n_classes)
+        Loss rows; the reject option, if any, is a constant row.
+    row : int
+        The row to examine.
+
+    Returns
+    -------
+    margin : float
+    posterior : array of shape (n_classes,), where the margin is reached.
+    """
+    n_rows, n_classes = loss.shape
+    others = [b for b in range(n_rows) if b != row]
+    if not others:
+        return float("inf"), np.full(n_classes, 1.0 / n_classes)
+    objective = np.zeros(n_classes + 1)
+    objective[-1] = -1.0  # linprog minimises, so minimise -t
+    a_ub = np.hstack([loss[row] - loss[others], np.ones((len(others), 1))])
+    a_eq = np.hstack([np.ones((1, n_classes)), np.zeros((1, 1))])
+    bounds = [(0.0, None)] * n_classes + [(None, None)]
+    result = linprog(
+        objective, A_ub=a_ub, b_ub=np.zeros(len(others)), A_eq=a_eq, b_eq=[1.0], bounds=bounds, method="highs"
+    )
+    if not result.success:  # pragma: no cover - the feasible set is a bounded simplex
+        raise RuntimeError(f"reachability LP failed: {result.message}")
+    posterior = np.clip(result.x[:n_classes], 0.0, None)
+    return float(-result.fun), posterior / posterior.sum()
+
+
+def reject_reach_value(loss: np.ndarray) -> float:
+    """V = max_p min_a Σ_j λ(a|j) p_j: deferring at cost d is ever taken iff d < V (Chow 1970 for 0-1 loss)."""
+    augmented = np.vstack([loss, np.zeros(loss.shape[1])])
+    margin, _ = winning_margin(augmented, augmented.shape[0] - 1)
+    return margin  # margin of a zero-cost reject row = V - 0

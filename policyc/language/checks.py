@@ -1,0 +1,538 @@
+"""Consistency analysis: small rules that each yield diagnostics about one concern.
+
+Every rule has the signature ``rule(policy, context) -> Iterator[Diagnostic]``
+and reports paths inside the policy; :func:`check_document` adds the source
+positions. ``RULES`` is the ordered registry, so a test can run one rule alone.
+
+Decision-theoretic rules (dominance, reachability, the reject option) work on
+the loss matrix λ(a|j) with the reject option as one more row of constant
+cost d: R(a|x) = Σ_j λ(a|j) P(j|x), and the rule takes argmin_a R(a|x),
+rejecting when min_a R(a|x) > d.
+"""
+
+from __future__ import annotations
+
+from collections import Counter
+from collections.abc import Callable, Iterator, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from policyc.files import file_sha256
+from policyc.geometry.reach import margin_tolerance, reject_reach_value, winning_margin
+from policyc.language.diagnostics import Diagnostic, PolicyCheckError, PolicyError, Severity
+from policyc.language.model import GaussianEvidence, Policy, PosteriorEvidence, build_policy
+from policyc.language.source import SourceDocument, load_source
+
+__all__ = [
+    "PRIOR_SUM_TOLERANCE",
+    "RULES",
+    "ActionRegion",
+    "CheckContext",
+    "CheckReport",
+    "action_regions",
+    "check_document",
+    "check_file",
+    "load_checked_policy",
+]
+
+PRIOR_SUM_TOLERANCE = 1e-6
+"""|Σ P(j) - 1| allowed; within it, compile renormalises (hand-written decimals rarely sum to 1 exactly)."""
+
+
+@dataclass(frozen=True)
+class CheckContext:
+    """What rules may know beyond the policy: where relative paths start."""
+
+    base_dir: Path | None = None
+
+    def resolve(self, relative: str) -> Path:
+        path = Path(relative)
+        return path if path.is_absolute() or self.base_dir is None else self.base_dir / path
+
+
+Rule = Callable[[Policy, CheckContext], Iterator[Diagnostic]]
+
+
+def _error(code: str, message: str, path: tuple[str | int, ...], hint: str | None = None) -> Diagnostic:
+    return Diagnostic(code, Severity.ERROR, message, path, hint=hint)
+
+
+def _warning(code: str, message: str, path: tuple[str | int, ...], hint: str | None = None) -> Diagnostic:
+    return Diagnostic(code, Severity.WARNING, message, path, hint=hint)
+
+
+def _duplicates(names: Sequence[str]) -> list[tuple[int, str]]:
+    seen: set[str] = set()
+    repeated = []
+    for index, name in enumerate(names):
+        if name in seen:
+            repeated.append((index, name))
+        seen.add(name)
+    return repeated
+
+
+# --- names -------------------------------------------------------------------------------------
+
+
+def classes_are_distinct_and_at_least_two(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
+    if len(set(policy.classes)) < 2:
+        yield _error("too-few-classes", "a decision needs at least two distinct classes", ("classes",))
+    for index, name in _duplicates(policy.classes):
+        yield _error("duplicate-class", f"class {name!r} is listed twice", ("classes", index))
+
+
+def actions_are_distinct(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
+    for index, name in _duplicates(policy.actions):
+        yield _error("duplicate-action", f"action {name!r} is listed twice", ("actions", index))
+
+
+def reject_action_name_is_free(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
+    if policy.reject is not None and policy.reject.action in policy.actions:
+        yield _error(
+            "reject-name-clash",
+            f"the reject action {policy.reject.action!r} has the name of an action",
+            ("reject", "action"),
+            "give deferring to a person a name of its own",
+        )
+
+
+# --- priors ------------------------------------------------------------------------------------
+
+
+def _probability_vector(
+    values: dict[str, float], classes: Sequence[str], path: tuple[str | int, ...], what: str
+) -> Iterator[Diagnostic]:
+    for name in classes:
+        if name not in values:
+            yield _error("prior-missing", f"{what} has no entry for class {name!r}", path)
+    for name, value in values.items():
+        if name not in classes:
+            yield _error("prior-unknown-class", f"{what} names {name!r}, which is not a class", (*path, name))
+        elif not 0.0 <= value <= 1.0:
+            yield _error("prior-out-of-range", f"{what} of {name!r} is {value}; it must lie in [0, 1]", (*path, name))
+    total = sum(values.values())
+    if abs(total - 1.0) > PRIOR_SUM_TOLERANCE:
+        yield _error(
+            "priors-do-not-sum-to-one",
+            f"{what} sum to {total:.10g}; they must sum to 1 within {PRIOR_SUM_TOLERANCE:g}",
+            path,
+        )
+
+
+def priors_are_a_distribution(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
+    if policy.priors == "training":
+        if not isinstance(policy.evidence, GaussianEvidence):
+            yield _error(
+                "training-priors-need-training-data",
+                "priors: training takes class frequencies of training data, which this evidence kind has none of",
+                ("priors",),
+                "state the deployment priors as a mapping of class to probability",
+            )
+        return
+    yield from _probability_vector(policy.priors, policy.classes, ("priors",), "priors")
+    for name, value in policy.priors.items():
+        if value == 0.0 and name in policy.classes:
+            yield _warning(
+                "zero-prior",
+                f"class {name!r} has prior 0, so its posterior is always 0 and its losses never count",
+                ("priors", name),
+            )
+
+
+# --- loss matrix -------------------------------------------------------------------------------
+
+
+def loss_matrix_names_actions_and_classes(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
+    key, matrix = policy.matrix_key, policy.stated_matrix
+    for action in policy.actions:
+        if action not in matrix:
+            yield _error("loss-missing-action", f"{key} has no row for action {action!r}", (key,))
+    for action, row in matrix.items():
+        if action not in policy.actions:
+            hint = (
+                "the reject cost goes under reject:, not in the matrix"
+                if (policy.reject is not None and action == policy.reject.action)
+                else None
+            )
+            yield _error(
+                "loss-unknown-action", f"{key} has a row {action!r}, which is not an action", (key, action), hint
+            )
+            continue
+        for name in policy.classes:
+            if name not in row:
+                yield _error("loss-missing-class", f"{key}[{action}] has no entry for class {name!r}", (key, action))
+        for name in row:
+            if name not in policy.classes:
+                yield _error(
+                    "loss-unknown-class", f"{key}[{action}] names {name!r}, which is not a class", (key, action, name)
+                )
+
+
+def _complete_matrix(policy: Policy) -> np.ndarray | None:
+    """Loss rows for the actions plus the reject row (d, ..., d), or None if the matrix is incomplete."""
+    if any(list(_names_problems(policy))):
+        return None
+    loss = policy.loss_matrix()
+    cost = policy.reject_cost()
+    if cost is not None:
+        loss = np.vstack([loss, np.full(len(policy.classes), cost)])
+    return loss
+
+
+def _names_problems(policy: Policy) -> Iterator[Diagnostic]:
+    yield from classes_are_distinct_and_at_least_two(policy, CheckContext())
+    yield from actions_are_distinct(policy, CheckContext())
+    yield from loss_matrix_names_actions_and_classes(policy, CheckContext())
+
+
+def reject_value_matches_matrix(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
+    if policy.reject is None:
+        return
+    stated = "cost" if policy.reject.cost is not None else "gain"
+    expected = "cost" if policy.loss is not None else "gain"
+    if stated != expected:
+        yield _error(
+            "reject-value-mismatch",
+            f"reject states a {stated} but the policy states {policy.matrix_key}:",
+            ("reject", stated),
+            f"write reject: {{action: ..., {expected}: ...}} so both are on the same scale",
+        )
+
+
+def invalid_input_has_somewhere_to_go(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
+    if policy.invalid_input == "reject" and policy.reject is None:
+        yield _error(
+            "invalid-input-needs-reject",
+            "invalid_input: reject needs a reject option to send such rows to",
+            ("invalid_input",),
+            "add reject: {action: ..., cost: ...} or use invalid_input: error",
+        )
+
+
+def _row_name(policy: Policy, row: int) -> str:
+    if row < len(policy.actions):
+        return policy.actions[row]
+    assert policy.reject is not None
+    return policy.reject.action
+
+
+def _row_path(policy: Policy, row: int) -> tuple[str | int, ...]:
+    if row < len(policy.actions):
+        return (policy.matrix_key, policy.actions[row])
+    return ("reject",)
+
+
+def _dominator(loss: np.ndarray, row: int) -> int | None:
+    """A row n that is never worse than ``row`` for any class (Elkan 2001, §1.1, row dominance).
+
+    Equal rows count as dominance of the later row, since ties go to the earlier one.
+    """
+    for other in range(loss.shape[0]):
+        if other == row:
+            continue
+        never_worse = np.all(loss[other] <= loss[row])
+        if never_worse and (np.any(loss[other] < loss[row]) or other < row):
+            return other
+    return None
+
+
+def no_dominated_actions(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
+    loss = _complete_matrix(policy)
+    if loss is None:
+        return
+    for row in range(loss.shape[0]):
+        other = _dominator(loss, row)
+        if other is None:
+            continue
+        if row == len(policy.actions):
+            yield _warning(
+                "reject-never-taken",
+                f"action {_row_name(policy, other)!r} never costs more than the reject cost, "
+                "so deferring is never chosen",
+                ("reject",),
+                "lower the reject cost, or drop the reject option",
+            )
+        else:
+            dominated_by = "deferring" if other == len(policy.actions) else f"action {_row_name(policy, other)!r}"
+            yield _warning(
+                "dominated-action",
+                f"action {_row_name(policy, row)!r} is never better than {dominated_by} "
+                "for any class, so it is never chosen",
+                _row_path(policy, row),
+                "check its losses, or remove the action",
+            )
+
+
+@dataclass(frozen=True)
+class ActionRegion:
+    """Where an action (or the reject option) is the minimum-risk choice."""
+
+    name: str
+    margin: float
+    example_posterior: tuple[float, ...]
+
+    @property
+    def reachable(self) -> bool:
+        return self.margin > 0.0
+
+
+def action_regions(policy: Policy) -> list[ActionRegion] | None:
+    """One region per action, reject last; None when the matrix is incomplete."""
+    loss = _complete_matrix(policy)
+    if loss is None:
+        return None
+    tolerance = margin_tolerance(loss)
+    regions = []
+    for row in range(loss.shape[0]):
+        # Ties go to the earlier row, so a later identical copy never takes a region from this row.
+        keep = [b for b in range(loss.shape[0]) if b <= row or not np.array_equal(loss[b], loss[row])]
+        margin, posterior = winning_margin(loss[keep], row)
+        regions.append(
+            ActionRegion(_row_name(policy, row), margin if margin > tolerance else 0.0, tuple(posterior.tolist()))
+        )
+    return regions
+
+
+def every_action_is_reachable(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
+    loss = _complete_matrix(policy)
+    regions = action_regions(policy)
+    if loss is None or regions is None:
+        return
+    for row, region in enumerate(regions):
+        if region.reachable or _dominator(loss, row) is not None:
+            continue  # dominated rows are reported by no_dominated_actions
+        if row == len(policy.actions):
+            value = reject_reach_value(loss[:-1])
+            yield _warning(
+                "reject-never-taken",
+                f"the reject cost {loss[-1, 0]:g} is at least V = {value:.6g}, the largest minimum "
+                "risk over all posteriors, so deferring is never chosen",
+                ("reject",),
+                f"a reject cost below {value:.6g} makes deferring possible",
+            )
+        else:
+            yield _warning(
+                "unreachable-action",
+                f"action {region.name!r} is not the minimum-risk choice for any posterior",
+                _row_path(policy, row),
+                "lower its losses where it should win, or remove it",
+            )
+
+
+def reject_is_not_taken_everywhere(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
+    loss = _complete_matrix(policy)
+    if loss is None or policy.reject is None:
+        return
+    # min_p min_a λ_a·p is reached at a vertex of the simplex (a concave function's minimum).
+    floor = float(np.min(loss[:-1]))
+    cost = float(loss[-1, 0])
+    if cost < floor:
+        yield _warning(
+            "reject-always-taken",
+            f"the reject cost {cost:g} is below every loss ({floor:g} is the smallest), so every input is deferred",
+            ("reject",),
+        )
+
+
+def loss_matrix_is_oriented(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
+    """Actions named like classes: the matching action should be the cheapest for its class."""
+    if not set(policy.classes) <= set(policy.actions) or _complete_matrix(policy) is None:
+        return
+    loss = policy.loss_matrix()
+    for column, name in enumerate(policy.classes):
+        row = policy.actions.index(name)
+        if loss[row, column] > loss[:, column].min():
+            cheapest = policy.actions[int(np.argmin(loss[:, column]))]
+            yield _warning(
+                "loss-may-be-transposed",
+                f"when the truth is {name!r}, action {name!r} costs more than {cheapest!r}; "
+                f"{policy.matrix_key} is keyed {policy.matrix_key}[action][class]",
+                (policy.matrix_key, name, name),
+                "if the rows are true classes, swap the keys",
+            )
+
+
+# --- evidence ----------------------------------------------------------------------------------
+
+
+def features_are_distinct(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
+    if isinstance(policy.evidence, GaussianEvidence):
+        for index, name in _duplicates(policy.evidence.features):
+            yield _error("duplicate-feature", f"feature {name!r} is listed twice", ("evidence", "features", index))
+
+
+def training_data_is_present_and_pinned(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
+    if not isinstance(policy.evidence, GaussianEvidence):
+        return
+    training = policy.evidence.training
+    path = context.resolve(training.data)
+    where = ("evidence", "training", "data")
+    if not path.is_file():
+        yield _error(
+            "training-data-missing",
+            f"training data {str(path)!r} does not exist",
+            where,
+            "paths are relative to the policy file",
+        )
+        return
+    digest = file_sha256(path)
+    if training.sha256 is None:
+        yield Diagnostic(
+            "training-data-unpinned",
+            Severity.INFO,
+            f"training data is not pinned; its sha256 is {digest}",
+            ("evidence", "training"),
+            "add sha256: so a changed file cannot silently change the rule",
+        )
+    elif digest != training.sha256:
+        yield _error(
+            "training-data-hash-mismatch",
+            f"training data {training.data!r} has sha256 {digest}, not the pinned value",
+            ("evidence", "training", "sha256"),
+            "if the new data is intended, review it and update the pin",
+        )
+
+
+def evidence_columns_cover_classes(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
+    evidence = policy.evidence
+    if isinstance(evidence, GaussianEvidence):
+        return
+    columns = evidence.columns
+    for name in policy.classes:
+        if name not in columns:
+            yield _error(
+                "evidence-column-missing", f"evidence.columns has no column for class {name!r}", ("evidence", "columns")
+            )
+    for name in columns:
+        if name not in policy.classes:
+            yield _error(
+                "evidence-column-unknown-class",
+                f"evidence.columns names {name!r}, which is not a class",
+                ("evidence", "columns", name),
+            )
+    counts = Counter(columns.values())
+    for name, column in columns.items():
+        if counts[column] > 1:
+            yield _error(
+                "duplicate-column", f"column {column!r} is used for more than one class", ("evidence", "columns", name)
+            )
+
+
+def posterior_evidence_is_documented(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
+    evidence = policy.evidence
+    if not isinstance(evidence, PosteriorEvidence):
+        return
+    yield from _probability_vector(
+        evidence.trained_priors, policy.classes, ("evidence", "trained_priors"), "trained priors"
+    )
+    for name, value in evidence.trained_priors.items():
+        if value == 0.0 and name in policy.classes:
+            yield _error(
+                "trained-prior-zero",
+                f"trained prior of {name!r} is 0; the prior correction divides by it",
+                ("evidence", "trained_priors", name),
+            )
+    if evidence.calibration is None:
+        yield _warning(
+            "uncalibrated-posterior",
+            "posterior evidence has no calibration record; a cost-derived rule is only right on "
+            "calibrated probabilities",
+            ("evidence",),
+            "add calibration: {method: ..., data_sha256: ..., score: {metric: brier, value: ...}}",
+        )
+
+
+RULES: tuple[Rule, ...] = (
+    classes_are_distinct_and_at_least_two,
+    actions_are_distinct,
+    reject_action_name_is_free,
+    priors_are_a_distribution,
+    loss_matrix_names_actions_and_classes,
+    reject_value_matches_matrix,
+    invalid_input_has_somewhere_to_go,
+    no_dominated_actions,
+    every_action_is_reachable,
+    reject_is_not_taken_everywhere,
+    loss_matrix_is_oriented,
+    features_are_distinct,
+    training_data_is_present_and_pinned,
+    evidence_columns_cover_classes,
+    posterior_evidence_is_documented,
+)
+
+
+# --- driver ------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class CheckReport:
+    """The outcome of checking one policy file."""
+
+    name: str
+    document: SourceDocument | None
+    policy: Policy | None
+    diagnostics: tuple[Diagnostic, ...]
+
+    @property
+    def source_lines(self) -> list[str]:
+        """The policy's lines, for excerpts; read leniently when strict loading failed."""
+        if self.document is not None:
+            return self.document.lines
+        try:
+            return Path(self.name).read_text(encoding="utf-8", errors="replace").splitlines()
+        except OSError:
+            return []
+
+    @property
+    def has_errors(self) -> bool:
+        return any(d.is_error for d in self.diagnostics)
+
+    @property
+    def has_warnings(self) -> bool:
+        return any(d.severity is Severity.WARNING for d in self.diagnostics)
+
+
+def run_rules(
+    policy: Policy, context: CheckContext, rules: Sequence[Rule] = RULES, fail_fast: bool = False
+) -> list[Diagnostic]:
+    found: list[Diagnostic] = []
+    for rule in rules:
+        for diagnostic in rule(policy, context):
+            found.append(diagnostic)
+            if fail_fast and diagnostic.is_error:
+                return found
+    return found
+
+
+def check_document(document: SourceDocument, rules: Sequence[Rule] = RULES, fail_fast: bool = False) -> CheckReport:
+    try:
+        policy = build_policy(document)
+    except PolicyError as exc:
+        return CheckReport(document.name, document, None, _in_source_order(exc.diagnostics))
+    context = CheckContext(document.base_dir)
+    diagnostics = [document.locate(d) for d in run_rules(policy, context, rules, fail_fast)]
+    return CheckReport(document.name, document, policy, _in_source_order(diagnostics))
+
+
+def _in_source_order(diagnostics: Sequence[Diagnostic]) -> tuple[Diagnostic, ...]:
+    return tuple(sorted(diagnostics, key=lambda d: (d.line or 0, d.col or 0)))
+
+
+def check_file(path: str | Path, fail_fast: bool = False) -> CheckReport:
+    try:
+        document = load_source(path)
+    except PolicyError as exc:
+        return CheckReport(str(path), None, None, exc.diagnostics)
+    return check_document(document, fail_fast=fail_fast)
+
+
+def load_checked_policy(path: str | Path) -> tuple[SourceDocument, Policy, tuple[Diagnostic, ...]]:
+    """Load, validate and check; raise the first stage's PolicyError when anything is an error."""
+    document = load_source(path)
+    policy = build_policy(document)
+    report = check_document(document)
+    if report.has_errors:
+        raise PolicyCheckError([d for d in report.diagnostics if d.is_error])
+    return document, policy, report.diagnostics

@@ -1,0 +1,226 @@
+"""Both rules' decisions on a reference table: flips, reject rates, expected and empirical risk."""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from policyc.batch import assess_batch
+from policyc.evidence.io import DEFAULT_BATCH_ROWS, DataError, read_feature_batches
+from policyc.review.diff.posterior import same_actions
+from policyc.review.shared.bootstrap import (
+    DEFAULT_CONFIDENCE,
+    DEFAULT_RESAMPLES,
+    DEFAULT_SEED,
+    BootstrapInterval,
+    categorical_mean_interval,
+)
+from policyc.review.shared.labels import label_codes
+from policyc.runtime import Rule
+
+__all__ = ["DataDiff", "data_diff"]
+
+
+@dataclass(frozen=True)
+class DataDiff:
+    """Both rules' decisions on a reference table (see the module docstring for each quantity)."""
+
+    source: str
+    old_actions: tuple[str, ...]
+    new_actions: tuple[str, ...]
+    flips: np.ndarray  # (A_old, A_new) row counts
+    flipped: int
+    invalid_rows: int  # rows the new rule cannot evaluate (sent per its invalid_input)
+    reject_rate_old: float | None
+    reject_rate_new: float | None
+    expected_risk: tuple[float, float, int] | None  # (old decisions, new decisions, rows) under the new model
+    empirical_risk: tuple[float, float, int] | None  # (old, new, rows) by the new loss matrix
+    difference: BootstrapInterval | None  # empirical new - old
+    label: str | None
+    features_differ: bool
+    notes: tuple[str, ...] = ()
+
+    @property
+    def rows(self) -> int:
+        return int(self.flips.sum())
+
+    @property
+    def flip_rate(self) -> float:
+        # flip rate = rows whose action changes / all rows
+        return self.flipped / self.rows if self.rows else float("nan")
+
+    def to_json(self) -> dict[str, Any]:
+        expected = None
+        if self.expected_risk is not None:
+            old, new, rows = self.expected_risk
+            expected = {
+                "basis": "mean conditional risk R_new(a|x) under the new rule's model, rows valid for the new rule",
+                "rows": rows,
+                "old_decisions": old,
+                "new_decisions": new,
+                "difference": new - old,
+            }
+        empirical = None
+        if self.empirical_risk is not None and self.difference is not None:
+            old, new, rows = self.empirical_risk
+            empirical = {
+                "label": self.label,
+                "basis": "mean of loss_new[action, true class], the NEW policy's loss matrix",
+                "rows": rows,
+                "old": old,
+                "new": new,
+                "difference": self.difference.to_json(),
+            }
+        return {
+            "source": self.source,
+            "rows": self.rows,
+            "invalid_rows": self.invalid_rows,
+            "features_differ": self.features_differ,
+            "notes": list(self.notes),
+            "flips": {
+                "old_actions": list(self.old_actions),
+                "new_actions": list(self.new_actions),
+                "counts": self.flips.tolist(),
+            },
+            "flip_rate": self.flip_rate,
+            "reject_rate": {"old": self.reject_rate_old, "new": self.reject_rate_new},
+            "expected_risk": expected,
+            "empirical_risk": empirical,
+        }
+
+
+def _action_map(old: Rule, new: Rule) -> np.ndarray:
+    """Index in the new rule of each old action (-1 when the new rule has no such action)."""
+    same = same_actions(old, new)
+    return np.where(same.any(axis=1), same.argmax(axis=1), -1).astype(np.int64)
+
+
+@dataclass
+class _DataTally:
+    """Running sums over batches."""
+
+    old: Rule
+    new: Rule
+    mapping: np.ndarray
+    flips: np.ndarray
+    cells: np.ndarray  # (A_new, A_new, K_new): rows per (mapped old action, new action, true class)
+    risk_old: float = 0.0
+    risk_new: float = 0.0
+    risk_rows: int = 0
+    invalid: int = 0
+
+    def add(self, X: tuple[np.ndarray, np.ndarray], codes: np.ndarray | None, path: Path, first_row: int) -> None:
+        """Decide one batch with both rules; ``X`` holds each rule's feature columns."""
+        before = assess_batch(self.old, X[0], path, first_row, "old rule: ")
+        after = assess_batch(self.new, X[1], path, first_row, "new rule: ")
+        n_new = len(self.new.actions)
+        self.flips += np.bincount(
+            before.action * n_new + after.action, minlength=len(self.old.actions) * n_new
+        ).reshape(len(self.old.actions), n_new)
+        self.invalid += int((~after.valid).sum())
+        mapped = self.mapping[before.action]
+        valid = after.valid
+        if (mapped >= 0).all():
+            rows = np.flatnonzero(valid)
+            # mean R_new(a|x) over rows valid for the new rule, a = the old and the new decision
+            self.risk_old += float(after.risks[rows, mapped[rows]].sum())
+            self.risk_new += float(after.risks[rows, after.action[rows]].sum())
+            self.risk_rows += rows.size
+            if codes is not None:
+                k = len(self.new.classes)
+                flat = (mapped * n_new + after.action) * k + codes
+                self.cells += np.bincount(flat, minlength=self.cells.size).reshape(self.cells.shape)
+
+
+def _batches(
+    path: Path, old: Rule, new: Rule, label: str | None, batch_rows: int
+) -> Iterator[tuple[tuple[np.ndarray, np.ndarray], np.ndarray | None, int]]:
+    columns = list(dict.fromkeys([*old.features, *new.features]))
+    old_index = [columns.index(f) for f in old.features]
+    new_index = [columns.index(f) for f in new.features]
+    for batch in read_feature_batches(path, columns, label=label, batch_rows=batch_rows):
+        codes = None
+        if batch.label_column is not None:
+            codes = label_codes(path, label or "", batch, new.classes, "the new rule")
+        yield (batch.features[:, old_index], batch.features[:, new_index]), codes, batch.first_row
+
+
+def data_diff(
+    old: Rule,
+    new: Rule,
+    data: Path,
+    label: str | None = None,
+    confidence: float = DEFAULT_CONFIDENCE,
+    resamples: int = DEFAULT_RESAMPLES,
+    seed: int = DEFAULT_SEED,
+    batch_rows: int = DEFAULT_BATCH_ROWS,
+) -> DataDiff:
+    """Decide every row of ``data`` with both rules, in batches; raise DataError on unusable data."""
+    mapping = _action_map(old, new)
+    n_new = len(new.actions)
+    tally = _DataTally(
+        old,
+        new,
+        mapping,
+        np.zeros((len(old.actions), n_new), dtype=np.int64),
+        np.zeros((n_new, n_new, len(new.classes)), dtype=np.int64),
+    )
+    for X, codes, first_row in _batches(data, old, new, label, batch_rows):
+        tally.add(X, codes, data, first_row)
+    return _finish(tally, data, label, confidence, resamples, seed)
+
+
+def _finish(tally: _DataTally, data: Path, label: str | None, confidence: float, resamples: int, seed: int) -> DataDiff:
+    old, new, mapping, flips = tally.old, tally.new, tally.mapping, tally.flips
+    rows = int(flips.sum())
+    if rows == 0:
+        raise DataError(f"{data}: the file has no rows")
+    notes = []
+    features_differ = set(old.features) != set(new.features)
+    if features_differ:
+        notes.append("the rules read different features; each rule decided on its own columns of the data")
+    same = mapping[:, None] == np.arange(len(new.actions))[None, :]
+    flipped = int(flips[~same].sum())
+    unmatched = [a for a, m in zip(old.actions, mapping, strict=True) if m < 0 and flips[old.actions.index(a)].any()]
+    expected = empirical = difference = None
+    if unmatched:
+        notes.append(f"old action(s) {unmatched} do not exist in the new rule, so no risk comparison is possible")
+    elif tally.risk_rows:
+        # mean R_new(a|x) = Σ_rows R_new(a(x)|x) / rows, for the old and the new decisions
+        expected = (tally.risk_old / tally.risk_rows, tally.risk_new / tally.risk_rows, tally.risk_rows)
+    if label is not None and not unmatched:
+        loss = np.asarray(new.params["loss"])
+        # per row: loss_new[a_new, y] - loss_new[a_old, y], by category (a_old mapped, a_new, y)
+        values = loss[None, :, :] - loss[:, None, :]
+        difference = categorical_mean_interval(tally.cells, values, confidence, resamples, seed)
+        # empirical risk = (1/n) Σ_rows loss_new[a(x), y]: cell counts by (action, class) times the loss
+        old_loss = float((tally.cells.sum(axis=1) * loss).sum()) / rows
+        new_loss = float((tally.cells.sum(axis=0) * loss).sum()) / rows
+        empirical = (old_loss, new_loss, rows)
+    return DataDiff(
+        str(data),
+        tuple(old.actions),
+        tuple(new.actions),
+        flips,
+        flipped,
+        tally.invalid,
+        _reject_share(old, flips.sum(axis=1)),
+        _reject_share(new, flips.sum(axis=0)),
+        expected,
+        empirical,
+        difference,
+        label,
+        features_differ,
+        tuple(notes),
+    )
+
+
+def _reject_share(rule: Rule, counts: np.ndarray) -> float | None:
+    if rule.reject_action is None:
+        return None
+    # reject rate = rows sent to the reject action / all rows
+    return float(counts[rule.actions.index(rule.reject_action)] / counts.sum())

@@ -1,0 +1,187 @@
+"""Where on the probability simplex the chosen action changes between two rules (no data needed)."""
+
+from __future__ import annotations
+
+import itertools
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from policyc.geometry.decisions import align_columns, matching_actions
+from policyc.geometry.intervals import posterior_intervals
+from policyc.geometry.sampling import DEFAULT_SIMPLEX_SAMPLES, SIMPLEX_REPLICATES, decision_pair_shares, mean_and_se
+from policyc.review.shared.bootstrap import DEFAULT_SEED
+from policyc.runtime import Rule
+
+__all__ = [
+    "POSTERIOR_SPACE_NOTE",
+    "ActionInterval",
+    "Movement",
+    "PosteriorSpaceDiff",
+    "posterior_space_diff",
+    "same_actions",
+]
+
+
+def same_actions(old: Rule, new: Rule) -> np.ndarray:
+    """Boolean (A_old, A_new): actions match by name; the two reject options match each other whatever their names."""
+    return matching_actions(old.actions, old.reject_action, new.actions, new.reject_action)
+
+
+@dataclass(frozen=True)
+class ActionInterval:
+    """Action chosen for P(second class | x) in [low, high]."""
+
+    low: float
+    high: float
+    action: str
+
+    def to_json(self) -> dict[str, Any]:
+        return {"low": self.low, "high": self.high, "action": self.action}
+
+
+@dataclass(frozen=True)
+class Movement:
+    """Where the chosen action goes from ``old_action`` to ``new_action``: its share of the simplex
+    (standard error 0 when exact) and, for two classes, the interval [low, high] of P(second class | x)."""
+
+    old_action: str
+    new_action: str
+    share: float
+    standard_error: float
+    low: float | None = None
+    high: float | None = None
+
+    def to_json(self) -> dict[str, Any]:
+        return {
+            "old_action": self.old_action,
+            "new_action": self.new_action,
+            "share": self.share,
+            "standard_error": self.standard_error,
+            "low": self.low,
+            "high": self.high,
+        }
+
+
+POSTERIOR_SPACE_NOTE = (
+    "compares the decision maps p -> argmin_a loss[a]·p of the two loss matrices (reject row included); "
+    "changes of priors or evidence move inputs within the simplex and show only in the data diff"
+)
+
+
+@dataclass(frozen=True)
+class PosteriorSpaceDiff:
+    comparable: bool
+    reason: str | None
+    classes: tuple[str, ...]
+    method: str | None = None
+    changed_share: float | None = None
+    standard_error: float | None = None
+    movements: tuple[Movement, ...] = ()
+    old_intervals: tuple[ActionInterval, ...] = ()
+    new_intervals: tuple[ActionInterval, ...] = ()
+    samples: int | None = None
+    replicates: int | None = None
+    seed: int | None = None
+
+    @property
+    def posterior_of(self) -> str | None:
+        return self.classes[1] if self.comparable and len(self.classes) == 2 else None
+
+    def to_json(self) -> dict[str, Any]:
+        return {
+            "comparable": self.comparable,
+            "reason": self.reason,
+            "classes": list(self.classes),
+            "method": self.method,
+            "changed_share": self.changed_share,
+            "standard_error": self.standard_error,
+            "note": POSTERIOR_SPACE_NOTE,
+            "posterior_of": self.posterior_of,
+            "old_intervals": [i.to_json() for i in self.old_intervals],
+            "new_intervals": [i.to_json() for i in self.new_intervals],
+            "movements": [m.to_json() for m in self.movements],
+            "samples": self.samples,
+            "replicates": self.replicates,
+            "seed": self.seed,
+        }
+
+
+def _named_intervals(loss: np.ndarray, actions: Sequence[str]) -> tuple[ActionInterval, ...]:
+    return tuple(ActionInterval(i.low, i.high, actions[i.action]) for i in posterior_intervals(loss))
+
+
+def _action_at(intervals: Sequence[ActionInterval], q: float) -> str:
+    return next(i.action for i in intervals if i.low <= q <= i.high)
+
+
+def _two_class_movements(
+    old: Rule, new: Rule, old_intervals: Sequence[ActionInterval], new_intervals: Sequence[ActionInterval]
+) -> tuple[Movement, ...]:
+    """Sub-intervals of q = P(second class | x) where the chosen action differs, adjacent pieces merged."""
+    same = same_actions(old, new)
+    edges = sorted({e for i in (*old_intervals, *new_intervals) for e in (i.low, i.high)})
+    movements: list[Movement] = []
+    for low, high in itertools.pairwise(edges):
+        middle = 0.5 * (low + high)  # one action per piece: read it at the midpoint
+        before, after = _action_at(old_intervals, middle), _action_at(new_intervals, middle)
+        if same[old.actions.index(before), new.actions.index(after)]:
+            continue
+        last = movements[-1] if movements else None
+        continues = last is not None and (last.old_action, last.new_action, last.high) == (before, after, low)
+        if last is not None and last.low is not None and continues:
+            movements[-1] = Movement(before, after, high - last.low, 0.0, last.low, high)  # length = high - low
+        else:
+            movements.append(Movement(before, after, high - low, 0.0, low, high))  # length = high - low
+    return tuple(movements)
+
+
+def posterior_space_diff(
+    old: Rule, new: Rule, samples: int = DEFAULT_SIMPLEX_SAMPLES, seed: int = DEFAULT_SEED
+) -> PosteriorSpaceDiff:
+    """Where on the probability simplex the chosen action changes (see the module docstring)."""
+    if set(old.classes) != set(new.classes) or len(old.classes) != len(new.classes):
+        reason = f"the class lists differ ({list(old.classes)} vs {list(new.classes)}), so the simplices differ"
+        return PosteriorSpaceDiff(False, reason, tuple(old.classes))
+    old_loss, new_loss = np.asarray(old.params["loss"]), align_columns(new.params["loss"], new.classes, old.classes)
+    if len(old.classes) == 2:
+        old_intervals = _named_intervals(old_loss, old.actions)
+        new_intervals = _named_intervals(new_loss, new.actions)
+        movements = _two_class_movements(old, new, old_intervals, new_intervals)
+        changed = sum(m.share for m in movements)  # uniform measure on [0, 1]: total length
+        return PosteriorSpaceDiff(
+            True, None, tuple(old.classes), "exact", changed, 0.0, movements, old_intervals, new_intervals
+        )
+    return _simplex_diff(old, new, old_loss, new_loss, samples, seed)
+
+
+def _simplex_diff(
+    old: Rule, new: Rule, old_loss: np.ndarray, new_loss: np.ndarray, samples: int, seed: int
+) -> PosteriorSpaceDiff:
+    """Share of the simplex per (old action -> new action), with a standard error over R scrambles
+    (see :func:`policyc.geometry.sampling.decision_pair_shares`)."""
+    pair_shares = decision_pair_shares(old_loss, new_loss, samples, seed)
+    same = same_actions(old, new)
+    movements = []
+    changed = np.zeros(SIMPLEX_REPLICATES)
+    for a, before in enumerate(old.actions):
+        for b, after in enumerate(new.actions):
+            if same[a, b] or not pair_shares[:, a, b].any():
+                continue
+            changed += pair_shares[:, a, b]
+            movements.append(Movement(before, after, *mean_and_se(pair_shares[:, a, b])))
+    share, error = mean_and_se(changed)
+    return PosteriorSpaceDiff(
+        True,
+        None,
+        tuple(old.classes),
+        "sobol",
+        share,
+        error,
+        tuple(movements),
+        samples=(samples // SIMPLEX_REPLICATES) * SIMPLEX_REPLICATES,
+        replicates=SIMPLEX_REPLICATES,
+        seed=seed,
+    )

@@ -1,0 +1,402 @@
+"""How a rule does on labelled data: risk, errors, rejects, confusion, the risk-reject curve, calibration.
+
+Everything is accumulated batch by batch, so memory stays bounded whatever the
+file size; the bootstrap interval of the risk works on the confusion counts
+(:mod:`policyc.review.shared.bootstrap`).
+
+Definitions (``loss`` is the rule's matrix, reject row last, in its loss_unit):
+
+* empirical risk: mean over rows of loss[action, true class], reject cost included;
+* an accepted (not deferred) decision is an *error* when its loss exceeds the
+  least loss any action (reject aside) has for the row's true class; under 0-1
+  loss with one action per class this is a misclassification;
+* error rate: errors / all rows (Chow's E); error on accepted: errors / accepted rows;
+* reject rate: deferred rows / all rows (invalid rows deferred under ``invalid_input: reject`` included);
+* risk-reject curve: the reject cost c is swept over a grid from 0 to V, the
+  largest minimum risk over all posteriors (deferring is never chosen for c ≥ V),
+  plus the rule's own cost. At each c a row takes its minimum-risk action if
+  that risk is at most c, else it is deferred at cost c. The accepted sets are
+  nested, so as c rises the reject rate falls and the error rate E rises
+  (Chow 1970; Fukunaga 1990, p. 78);
+* calibration (posterior evidence only): the rule's posteriors, i.e. the
+  upstream probabilities corrected to the deployment priors, against the
+  labels. The upstream probabilities were calibrated under the upstream
+  training priors, so it is the corrected ones that must match the deployment
+  labels. Per class (one-vs-rest), 10 equal-width bins of the predicted
+  P(class | x), right-closed as in scikit-learn's ``calibration_curve``; per
+  class expected calibration error ECE_k = Σ_b (n_b / N) |observed_b − predicted_b|.
+
+JSON shape (``policyc evaluate --format json``; keys sorted, floats rounded to
+10 significant digits, NaN as null)::
+
+    {
+      "rule": {"source", "kind", "policy", "revision", "content_sha256", "policy_sha256", "training_sha256"},
+      "data": str, "label": str, "rows": int, "invalid_rows": int, "loss_unit": str|null,
+      "classes": [str], "actions": [str], "reject_action": str|null, "reject_cost": float|null,
+      "risk": {"estimate", "low", "high", "confidence", "resamples", "seed", "method"},
+      "error_rate": float, "accepted_error_rate": float|null, "reject_rate": float,
+      "error_definition": str,
+      "confusion": {"rows": "true class", "columns": "action", "counts": [[int]]},
+      "per_class": [{"class", "rows", "action_shares": {action: share}, "error_rate"}],
+      "curve": {"reach_value": V, "points": [{"reject_cost", "risk", "reject_rate", "error_rate",
+                                              "accepted_error_rate", "own"}]},
+      "calibration": null | {"binning", "bins", "ece_warning_above", "warning": bool,
+                             "classes": [{"class", "ece", "bins": [{"low", "high", "count",
+                                                                     "mean_predicted", "observed"}]}]}
+    }
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from policyc.batch import assess_batch
+from policyc.evidence.io import DEFAULT_BATCH_ROWS, DataError, read_feature_batches
+from policyc.geometry.reach import reject_reach_value
+from policyc.review.shared.bootstrap import (
+    DEFAULT_CONFIDENCE,
+    DEFAULT_RESAMPLES,
+    DEFAULT_SEED,
+    BootstrapInterval,
+    categorical_mean_interval,
+)
+from policyc.review.shared.labels import label_codes
+from policyc.review.shared.loading import LoadedRule, identity
+from policyc.runtime import Rule
+
+__all__ = [
+    "CALIBRATION_BINS",
+    "CURVE_POINTS",
+    "ECE_WARNING",
+    "ERROR_DEFINITION",
+    "CalibrationReport",
+    "CurvePoint",
+    "Evaluation",
+    "ReliabilityBin",
+    "error_cells",
+    "evaluate",
+    "label_codes",
+]
+
+CURVE_POINTS = 41
+CALIBRATION_BINS = 10
+ECE_WARNING = 0.05
+"""Warn when a class's expected calibration error exceeds this (common practice, no source)."""
+
+ERROR_DEFINITION = (
+    "an accepted decision is an error when its loss exceeds the least loss any action (reject aside) "
+    "has for the true class"
+)
+
+
+def error_cells(loss: np.ndarray, n_plain: int) -> np.ndarray:
+    """Boolean (A, K): True where taking action a for true class k is an error (see the module docstring).
+
+    The reject row (index ≥ ``n_plain``) is never an error; it is a deferral.
+    """
+    plain = loss[:n_plain]
+    cells = np.zeros(loss.shape, dtype=bool)
+    cells[:n_plain] = plain > plain.min(axis=0, keepdims=True)  # λ(a|k) > min_b λ(b|k)
+    return cells
+
+
+@dataclass(frozen=True)
+class CurvePoint:
+    """One point of the risk-reject curve at reject cost ``reject_cost``."""
+
+    reject_cost: float
+    risk: float
+    reject_rate: float
+    error_rate: float
+    accepted_error_rate: float
+    own: bool
+
+    def to_json(self) -> dict[str, Any]:
+        return {
+            "reject_cost": self.reject_cost,
+            "risk": self.risk,
+            "reject_rate": self.reject_rate,
+            "error_rate": self.error_rate,
+            "accepted_error_rate": self.accepted_error_rate,
+            "own": self.own,
+        }
+
+
+@dataclass(frozen=True)
+class ReliabilityBin:
+    low: float
+    high: float
+    count: int
+    mean_predicted: float
+    observed: float
+
+    def to_json(self) -> dict[str, Any]:
+        return {
+            "low": self.low,
+            "high": self.high,
+            "count": self.count,
+            "mean_predicted": self.mean_predicted,
+            "observed": self.observed,
+        }
+
+
+@dataclass(frozen=True)
+class CalibrationReport:
+    """Per class: a reliability table of the rule's (prior-corrected) posteriors and the ECE."""
+
+    classes: tuple[str, ...]
+    tables: tuple[tuple[ReliabilityBin, ...], ...]
+    ece: tuple[float, ...]
+
+    @property
+    def warning(self) -> bool:
+        return max(self.ece) > ECE_WARNING
+
+    def to_json(self) -> dict[str, Any]:
+        return {
+            "binning": (
+                "per class, one-vs-rest: 10 equal-width right-closed bins of the rule's posterior P(class | x), "
+                "i.e. the upstream probabilities corrected to the deployment priors"
+            ),
+            "bins": CALIBRATION_BINS,
+            "ece_warning_above": ECE_WARNING,
+            "warning": self.warning,
+            "classes": [
+                {"class": name, "ece": ece, "bins": [b.to_json() for b in table]}
+                for name, table, ece in zip(self.classes, self.tables, self.ece, strict=True)
+            ],
+        }
+
+
+@dataclass(frozen=True)
+class Evaluation:
+    """Everything ``policyc evaluate`` reports (see the module docstring for definitions)."""
+
+    loaded: LoadedRule
+    data: str
+    label: str
+    confusion: np.ndarray  # (K, A) rows per (true class, action)
+    invalid_rows: int
+    risk: BootstrapInterval
+    curve: tuple[CurvePoint, ...]
+    reach_value: float
+    calibration: CalibrationReport | None
+
+    @property
+    def rule(self) -> Rule:
+        return self.loaded.rule
+
+    @property
+    def loss(self) -> np.ndarray:
+        return np.asarray(self.rule.params["loss"])
+
+    @property
+    def rows(self) -> int:
+        return int(self.confusion.sum())
+
+    @property
+    def n_plain(self) -> int:
+        return len(self.rule.actions) - (1 if self.rule.reject_action is not None else 0)
+
+    @property
+    def rejected(self) -> int:
+        return int(self.confusion[:, self.n_plain :].sum())
+
+    @property
+    def errors_by_class(self) -> np.ndarray:
+        # errors_k = Σ_a n[k, a] · [λ(a|k) > min_b λ(b|k)], a over the actions (reject aside)
+        return (self.confusion * error_cells(self.loss, self.n_plain).T).sum(axis=1)
+
+    @property
+    def reject_rate(self) -> float:
+        return self.rejected / self.rows  # R = deferred rows / all rows
+
+    @property
+    def error_rate(self) -> float:
+        return float(self.errors_by_class.sum()) / self.rows  # E = errors / all rows (Chow's E)
+
+    @property
+    def accepted_error_rate(self) -> float:
+        accepted = self.rows - self.rejected
+        return float(self.errors_by_class.sum()) / accepted if accepted else float("nan")  # errors / accepted rows
+
+    def to_json(self) -> dict[str, Any]:
+        rule = self.rule
+        per_class = []
+        for k, name in enumerate(rule.classes):
+            count = int(self.confusion[k].sum())
+            shares = self.confusion[k] / count if count else np.full(len(rule.actions), np.nan)  # n[k, a] / n_k
+            per_class.append(
+                {
+                    "class": name,
+                    "rows": count,
+                    "action_shares": dict(zip(rule.actions, shares.tolist(), strict=True)),
+                    "error_rate": float(self.errors_by_class[k] / count) if count else None,
+                }
+            )
+        return {
+            "rule": identity(self.loaded),
+            "data": self.data,
+            "label": self.label,
+            "rows": self.rows,
+            "invalid_rows": self.invalid_rows,
+            "loss_unit": rule.manifest.get("loss_unit"),
+            "classes": list(rule.classes),
+            "actions": list(rule.actions),
+            "reject_action": rule.reject_action,
+            "reject_cost": rule.manifest.get("reject_cost"),
+            "risk": self.risk.to_json(),
+            "error_rate": self.error_rate,
+            "accepted_error_rate": self.accepted_error_rate,
+            "reject_rate": self.reject_rate,
+            "error_definition": ERROR_DEFINITION,
+            "confusion": {"rows": "true class", "columns": "action", "counts": self.confusion.tolist()},
+            "per_class": per_class,
+            "curve": {"reach_value": self.reach_value, "points": [p.to_json() for p in self.curve]},
+            "calibration": self.calibration.to_json() if self.calibration is not None else None,
+        }
+
+
+class _CurveTally:
+    """Running sums of the risk-reject curve over a grid of reject costs."""
+
+    def __init__(self, loss: np.ndarray, n_plain: int, grid: np.ndarray) -> None:
+        self.plain = loss[:n_plain]
+        self.errors_at = error_cells(loss, n_plain)[:n_plain]
+        self.grid = grid
+        self.rejected = np.zeros(grid.size, dtype=np.int64)
+        self.errors = np.zeros(grid.size, dtype=np.int64)
+        self.loss_sum = np.zeros(grid.size)
+
+    def add(self, risks: np.ndarray, valid: np.ndarray, codes: np.ndarray) -> None:
+        n_plain = self.plain.shape[0]
+        plain_risks = np.where(valid[:, None], risks[:, :n_plain], 0.0)
+        best = np.argmin(plain_risks, axis=1)  # a*(x) = argmin over actions of R(a|x), ties to the earlier
+        least = np.where(valid, plain_risks[np.arange(best.size), best], np.inf)  # invalid rows: always deferred
+        # Chow's rule at cost c: accept a*(x) iff min_a R(a|x) <= c, else defer at cost c
+        deferred = least[:, None] > self.grid[None, :]
+        loss = self.plain[best, codes]
+        wrong = self.errors_at[best, codes]
+        self.rejected += deferred.sum(axis=0)
+        self.errors += (~deferred & wrong[:, None]).sum(axis=0)
+        self.loss_sum += np.where(deferred, self.grid[None, :], loss[:, None]).sum(axis=0)
+
+    def points(self, rows: int, own: float | None) -> tuple[CurvePoint, ...]:
+        accepted = rows - self.rejected
+        with np.errstate(invalid="ignore", divide="ignore"):
+            accepted_error = np.where(accepted > 0, self.errors / np.maximum(accepted, 1), np.nan)
+        return tuple(
+            CurvePoint(
+                float(c),
+                float(self.loss_sum[i] / rows),
+                float(self.rejected[i] / rows),
+                float(self.errors[i] / rows),
+                float(accepted_error[i]),
+                own is not None and float(c) == own,
+            )
+            for i, c in enumerate(self.grid)
+        )
+
+
+class _CalibrationTally:
+    """Per class and bin: rows, Σ predicted P(k|x), rows whose label is k."""
+
+    def __init__(self, n_classes: int) -> None:
+        self.edges = np.linspace(0.0, 1.0, CALIBRATION_BINS + 1)
+        self.count = np.zeros((n_classes, CALIBRATION_BINS), dtype=np.int64)
+        self.predicted = np.zeros((n_classes, CALIBRATION_BINS))
+        self.hits = np.zeros((n_classes, CALIBRATION_BINS), dtype=np.int64)
+
+    def add(self, posteriors: np.ndarray, valid: np.ndarray, codes: np.ndarray) -> None:
+        P, codes = posteriors[valid], codes[valid]
+        for k in range(self.count.shape[0]):
+            # right-closed bins (lo, hi], the first [0, 0.1]: the convention of sklearn's calibration_curve
+            bins = np.searchsorted(self.edges[1:-1], P[:, k], side="left")
+            self.count[k] += np.bincount(bins, minlength=CALIBRATION_BINS)
+            self.predicted[k] += np.bincount(bins, weights=P[:, k], minlength=CALIBRATION_BINS)
+            hits = np.bincount(bins, weights=(codes == k).astype(np.float64), minlength=CALIBRATION_BINS)
+            self.hits[k] += hits.astype(np.int64)
+
+    def report(self, classes: Sequence[str]) -> CalibrationReport:
+        tables, eces = [], []
+        for k in range(len(classes)):
+            n = int(self.count[k].sum())
+            # ECE_k = Σ_b (n_b / N) |observed_b − predicted_b| = Σ_b |hits_b − Σ_b p| / N
+            eces.append(float(np.abs(self.hits[k] - self.predicted[k]).sum() / n) if n else float("nan"))
+            tables.append(
+                tuple(
+                    ReliabilityBin(
+                        float(self.edges[b]),
+                        float(self.edges[b + 1]),
+                        int(self.count[k, b]),
+                        float(self.predicted[k, b] / self.count[k, b]),
+                        float(self.hits[k, b] / self.count[k, b]),
+                    )
+                    for b in range(CALIBRATION_BINS)
+                    if self.count[k, b]
+                )
+            )
+        return CalibrationReport(tuple(classes), tuple(tables), tuple(eces))
+
+
+def _grid(value: float, own: float | None, points: int, extra: Sequence[float]) -> np.ndarray:
+    costs = [*np.linspace(0.0, value, points).tolist(), *extra, *([own] if own is not None else [])]
+    return np.unique(np.asarray(costs, dtype=np.float64))
+
+
+def evaluate(
+    loaded: LoadedRule,
+    data: Path,
+    label: str,
+    confidence: float = DEFAULT_CONFIDENCE,
+    resamples: int = DEFAULT_RESAMPLES,
+    seed: int = DEFAULT_SEED,
+    curve_points: int = CURVE_POINTS,
+    extra_costs: Sequence[float] = (),
+    batch_rows: int = DEFAULT_BATCH_ROWS,
+) -> Evaluation:
+    """Decide every labelled row of ``data`` in batches and tally what the report needs.
+
+    Raises DataError on a missing column, a label that is not a class (naming the row), or invalid
+    rows under ``invalid_input: error``.
+    """
+    rule = loaded.rule
+    loss = np.asarray(rule.params["loss"])
+    n_plain = len(rule.actions) - (1 if rule.reject_action is not None else 0)
+    own = rule.manifest.get("reject_cost")
+    value = reject_reach_value(loss[:n_plain])
+    curve = _CurveTally(loss, n_plain, _grid(value, own, curve_points, extra_costs))
+    calibration = _CalibrationTally(len(rule.classes)) if rule.evidence == "posterior" else None
+    confusion = np.zeros((len(rule.classes), len(rule.actions)), dtype=np.int64)
+    invalid = 0
+    for batch in read_feature_batches(data, rule.features, label=label, batch_rows=batch_rows):
+        codes = label_codes(data, label, batch, rule.classes)
+        assessed = assess_batch(rule, batch.features, data, batch.first_row)
+        invalid += int((~assessed.valid).sum())
+        confusion += np.bincount(codes * len(rule.actions) + assessed.action, minlength=confusion.size).reshape(
+            confusion.shape
+        )
+        curve.add(assessed.risks, assessed.valid, codes)
+        if calibration is not None:
+            calibration.add(assessed.posteriors, assessed.valid, codes)
+    rows = int(confusion.sum())
+    if rows == 0:
+        raise DataError(f"{data}: the file has no rows")
+    # empirical risk = (1/n) Σ_rows λ(action, true class): confusion counts times loss, bootstrapped
+    risk = categorical_mean_interval(confusion, loss.T, confidence, resamples, seed)
+    return Evaluation(
+        loaded,
+        str(data),
+        label,
+        confusion,
+        invalid,
+        risk,
+        curve.points(rows, own),
+        value,
+        calibration.report(rule.classes) if calibration is not None else None,
+    )

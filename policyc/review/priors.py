@@ -1,0 +1,146 @@
+"""Estimate the class mix of unlabelled data with a compiled rule (EM for new priors).
+
+Saerens, Latinne & Decaestecker (2002), "Adjusting the outputs of a classifier to new
+a priori probabilities: a simple procedure", Neural Computation 14(1):21-41.
+With p_k(x) the rule's posteriors under its priors π, new priors π̃ give
+p̃_k(x) ∝ (π̃_k / π_k) p_k(x). EM alternates that correction (E-step) with
+π̃_k = mean over rows of p̃_k(x) (M-step); the fixed point maximises
+ℓ(π̃) = Σ_rows ln Σ_k (π̃_k / π_k) p_k(x) over the simplex.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from scipy import stats
+
+from policyc.evidence.io import DataError, read_feature_batches
+from policyc.runtime import Rule
+
+__all__ = ["PriorEstimate", "estimate_priors", "estimate_priors_from_posteriors", "posteriors_of_file"]
+
+
+@dataclass(frozen=True)
+class PriorEstimate:
+    classes: tuple[str, ...]
+    rule_priors: np.ndarray
+    priors: np.ndarray
+    low: np.ndarray
+    high: np.ndarray
+    iterations: int
+    converged: bool
+    change_statistic: float
+    p_value: float
+    rows: int
+    confidence: float
+
+    def to_json(self) -> dict[str, Any]:
+        """The documented shape: priors, interval, iterations, change_statistic, p_value (and context)."""
+        return {
+            "priors": dict(zip(self.classes, self.priors.tolist(), strict=True)),
+            "interval": {
+                c: [lo, hi] for c, lo, hi in zip(self.classes, self.low.tolist(), self.high.tolist(), strict=True)
+            },
+            "iterations": self.iterations,
+            "converged": self.converged,
+            "change_statistic": self.change_statistic,
+            "p_value": self.p_value,
+            "rule_priors": dict(zip(self.classes, self.rule_priors.tolist(), strict=True)),
+            "rows": self.rows,
+            "confidence": self.confidence,
+        }
+
+
+def _log_likelihood(ratios: np.ndarray, weights: np.ndarray) -> float:
+    # ℓ(π̃) = Σ_rows ln Σ_k (π̃_k / π_k) p_k(x)
+    return float(np.sum(np.log(ratios @ weights)))
+
+
+def estimate_priors_from_posteriors(
+    posteriors: np.ndarray,
+    rule_priors: np.ndarray,
+    classes: tuple[str, ...],
+    tolerance: float = 1e-10,
+    max_iterations: int = 10_000,
+    confidence: float = 0.95,
+) -> PriorEstimate:
+    """EM for new priors from posteriors (n, K) computed under ``rule_priors``.
+
+    Classes with a rule prior of 0 have posterior 0 everywhere and keep an estimate of 0.
+    Convergence: the largest change of any prior between iterations is below ``tolerance``.
+    The interval is a Wald interval from the observed information of ℓ on the simplex; the
+    change statistic is 2[ℓ(π̂) - ℓ(π)], compared with χ² on (K' - 1) degrees of freedom
+    (K' classes with non-zero prior; Saerens et al. 2002 describe such a likelihood-ratio test).
+    """
+    active = rule_priors > 0
+    ratios = posteriors[:, active] / rule_priors[active]  # a_k(x) = p_k(x) / π_k
+    estimate = rule_priors[active].copy()
+    iterations, converged = 0, False
+    while iterations < max_iterations and not converged:
+        corrected = ratios * estimate  # E-step: p̃_k(x) ∝ (π̃_k / π_k) p_k(x)
+        corrected /= corrected.sum(axis=1, keepdims=True)
+        updated = corrected.mean(axis=0)  # M-step: π̃_k = (1/N) Σ_rows p̃_k(x)
+        converged = float(np.max(np.abs(updated - estimate))) < tolerance
+        estimate, iterations = updated, iterations + 1
+    statistic = max(0.0, 2.0 * (_log_likelihood(ratios, estimate) - _log_likelihood(ratios, rule_priors[active])))
+    degrees = int(active.sum()) - 1
+    p_value = float(stats.chi2.sf(statistic, degrees)) if degrees > 0 else 1.0
+    low, high = _wald_interval(ratios, estimate, confidence)
+    full = np.zeros_like(rule_priors)
+    full_low, full_high = np.zeros_like(rule_priors), np.zeros_like(rule_priors)
+    full[active], full_low[active], full_high[active] = estimate, low, high
+    return PriorEstimate(
+        classes,
+        rule_priors,
+        full,
+        full_low,
+        full_high,
+        iterations,
+        converged,
+        statistic,
+        p_value,
+        posteriors.shape[0],
+        confidence,
+    )
+
+
+def _wald_interval(ratios: np.ndarray, estimate: np.ndarray, confidence: float) -> tuple[np.ndarray, np.ndarray]:
+    """π̂ ± z·se with se from the inverse observed information in the K-1 free coordinates.
+
+    With π̃_K = 1 - Σ_{j<K} π̃_j and s(x) = Σ_k π̃_k a_k(x):
+    ∂²ℓ/∂π̃_i∂π̃_j = -Σ_rows (a_i - a_K)(a_j - a_K) / s², i, j < K.
+    """
+    n_active = estimate.size
+    if n_active < 2:
+        return estimate.copy(), estimate.copy()
+    mixture = ratios @ estimate
+    contrasts = (ratios[:, :-1] - ratios[:, -1:]) / mixture[:, None]
+    information = contrasts.T @ contrasts
+    free_covariance = np.linalg.pinv(information)
+    # the last prior is minus the sum of the free ones, so its variance is 1ᵀ C 1
+    embed = np.vstack([np.eye(n_active - 1), -np.ones((1, n_active - 1))])
+    variances = np.clip(np.diag(embed @ free_covariance @ embed.T), 0.0, None)
+    z = float(stats.norm.ppf(0.5 + confidence / 2.0))
+    half_width = z * np.sqrt(variances)
+    return np.clip(estimate - half_width, 0.0, 1.0), np.clip(estimate + half_width, 0.0, 1.0)
+
+
+def posteriors_of_file(rule: Rule, data: Path) -> np.ndarray:
+    """The rule's posteriors for every valid row of ``data``, read in batches. Memory: 8·K bytes per row."""
+    parts = []
+    for batch in read_feature_batches(data, rule.features):
+        assessment = rule.assess(batch.features)
+        parts.append(assessment.posteriors[assessment.valid])
+    if not parts or sum(p.shape[0] for p in parts) == 0:
+        raise DataError(f"{data}: no valid rows to estimate priors from")
+    return np.vstack(parts)
+
+
+def estimate_priors(rule: Rule, data: Path, confidence: float = 0.95) -> PriorEstimate:
+    rule_priors = np.array([rule.manifest["priors"][c] for c in rule.classes])
+    return estimate_priors_from_posteriors(
+        posteriors_of_file(rule, data), rule_priors, rule.classes, confidence=confidence
+    )

@@ -1,0 +1,231 @@
+"""Property tests of the decision-theoretic checks against brute force and closed forms.
+
+Reachability is a linear program over the probability simplex (simplex.winning_margin);
+here it is compared with a dense grid over the 3-class simplex. The grid can only
+resolve margins larger than its own spacing allows, so each direction of the
+comparison is asserted only where that is provable:
+
+* a grid point where a row beats every other by more than 1e-9 is a feasible point
+  of the LP, so the LP margin is at least that gap;
+* the LP optimum p* rounds to a grid point q with |q_j - p*_j| < 1/N, hence
+  ||q - p*||_1 < 3/N, and every risk difference (λ_b - λ_r)·p moves by at most
+  ptp(λ_b - λ_r)/2 · ||q - p*||_1 (the differences of two points of the simplex sum
+  to zero). A margin larger than that bound is therefore seen on the grid.
+"""
+
+from __future__ import annotations
+
+from functools import cache
+
+import numpy as np
+import pytest
+from hypothesis import HealthCheck, assume, given, settings
+from hypothesis import strategies as st
+
+from policyc.geometry.reach import reject_reach_value, winning_margin
+from policyc.language.checks import (
+    CheckContext,
+    action_regions,
+    check_document,
+    every_action_is_reachable,
+    no_dominated_actions,
+    run_rules,
+)
+from policyc.language.model import Policy
+from policyc.language.source import parse_source
+
+PROPERTY_SETTINGS = settings(
+    max_examples=150,
+    deadline=None,
+    derandomize=True,
+    database=None,
+    suppress_health_check=[HealthCheck.too_slow],
+)
+
+GRID_N = 200  # simplex grid step 1/200: 20 301 points over three classes
+GAP = 1e-9  # a grid point counts as a win only when the row beats every other by more than this
+LP_SLACK = 1e-7  # HiGHS solves these tiny LPs to far better than this
+
+
+@cache
+def simplex_grid(n: int = GRID_N) -> np.ndarray:
+    """All points (i, j, n - i - j) / n of the 3-class probability simplex, shape (m, 3)."""
+    i, j = np.meshgrid(np.arange(n + 1), np.arange(n + 1), indexing="ij")
+    keep = i + j <= n
+    points = np.stack([i[keep], j[keep], n - i[keep] - j[keep]], axis=1)
+    return points / n
+
+
+def resolution_bound(loss: np.ndarray, row: int, n: int = GRID_N) -> float:
+    """Largest amount by which rounding a posterior to the grid can shrink the row's lead over any other row."""
+    spans = [np.ptp(loss[b] - loss[row]) for b in range(loss.shape[0]) if b != row]
+    return max(spans, default=0.0) / 2 * 3 / n
+
+
+def loss_matrices(max_actions: int = 5) -> st.SearchStrategy[tuple[np.ndarray, float | None]]:
+    """Integer losses 0..9 for 2..max_actions actions over 3 classes, and an optional reject cost."""
+    rows = st.lists(st.lists(st.integers(0, 9), min_size=3, max_size=3), min_size=2, max_size=max_actions)
+    reject = st.none() | st.integers(0, 20).map(lambda k: k / 2)
+    return st.tuples(rows.map(lambda r: np.array(r, dtype=float)), reject)
+
+
+def with_reject_row(loss: np.ndarray, cost: float | None) -> np.ndarray:
+    return loss if cost is None else np.vstack([loss, np.full(loss.shape[1], cost)])
+
+
+# --- LP reachability against a dense grid ------------------------------------------------------------
+
+
+@PROPERTY_SETTINGS
+@given(loss_matrices())
+def test_winning_margin_agrees_with_a_dense_grid(case: tuple[np.ndarray, float | None]) -> None:
+    loss, cost = case
+    rows = with_reject_row(loss, cost)  # the reject option is a constant row d: reject when min risk > d
+    risks = simplex_grid() @ rows.T  # R(a|p) = Σ_j λ(a|j) p_j at every grid point
+    for row in range(rows.shape[0]):
+        margin, posterior = winning_margin(rows, row)
+        others = np.delete(risks, row, axis=1)
+        lead = others.min(axis=1) - risks[:, row]  # > 0 where the row is the unique argmin
+        best = float(lead.max())
+        # The returned posterior is a point of the simplex where the row leads by the margin.
+        assert posterior.min() >= 0.0 and posterior.sum() == pytest.approx(1.0, abs=1e-12)
+        reached = np.delete(rows, row, axis=0) @ posterior - rows[row] @ posterior
+        assert reached.min() >= margin - LP_SLACK
+        # Grid win with a clear gap => the LP finds a margin at least that large.
+        if best > GAP:
+            assert margin >= best - LP_SLACK > 0.0
+        # LP margin beyond what the grid can miss => the grid sees the row win.
+        if margin > resolution_bound(rows, row) + LP_SLACK:
+            assert best > 0.0
+        # No grid point reaches beyond the LP optimum.
+        assert best <= margin + LP_SLACK
+
+
+def policy_for(loss: np.ndarray, cost: float | None) -> Policy:
+    classes = ("c0", "c1", "c2")
+    actions = tuple(f"a{i}" for i in range(loss.shape[0]))
+    data: dict[str, object] = {
+        "policy": "generated",
+        "classes": classes,
+        "priors": dict.fromkeys(classes, 1 / 3),
+        "actions": actions,
+        "loss": {
+            a: {c: float(v) for c, v in zip(classes, row, strict=True)} for a, row in zip(actions, loss, strict=True)
+        },
+        "evidence": {"kind": "log-likelihood", "columns": {c: f"l_{c}" for c in classes}},
+    }
+    if cost is not None:
+        data["reject"] = {"action": "defer", "cost": cost}
+    return Policy.model_validate(data)
+
+
+@PROPERTY_SETTINGS
+@given(loss_matrices())
+def test_action_regions_agree_with_grid_decisions(case: tuple[np.ndarray, float | None]) -> None:
+    """The regions follow the runtime's rule: argmin risk, ties to the earlier action, reject when min risk > d."""
+    loss, cost = case
+    policy = policy_for(loss, cost)
+    regions = action_regions(policy)
+    assert regions is not None
+    rows = with_reject_row(loss, cost)
+    assert [r.name for r in regions] == [*policy.actions, *(["defer"] if cost is not None else [])]
+    risks = simplex_grid() @ rows.T
+    chosen = np.argmin(risks, axis=1)  # first minimum: ties go to the earlier row, and reject is last
+    for row, region in enumerate(regions):
+        distinct = [b for b in range(rows.shape[0]) if not np.array_equal(rows[b], rows[row])]
+        lead = (risks[:, distinct].min(axis=1) if distinct else np.full(len(risks), np.inf)) - risks[:, row]
+        wins = chosen == row
+        if np.any(wins & (lead > GAP)):
+            assert region.reachable, (region, rows)
+        if region.margin > resolution_bound(rows, row) + LP_SLACK:
+            assert np.any(wins & (lead > 0.0)), (region, rows)
+        if any(np.array_equal(rows[b], rows[row]) for b in range(row)):
+            assert not region.reachable  # an earlier identical row takes every tie
+
+    # Every row that is never chosen is reported exactly once, by dominance or by reachability.
+    found = run_rules(policy, CheckContext(), rules=(no_dominated_actions, every_action_is_reachable))
+    flagged = sorted(d.path for d in found)
+    never = sorted(
+        ("loss", region.name) if row < len(policy.actions) else ("reject",)
+        for row, region in enumerate(regions)
+        if not region.reachable
+    )
+    assert flagged == never
+
+
+# --- the value V of the loss matrix (reject reachability) --------------------------------------------
+
+
+@pytest.mark.parametrize("k", [2, 3, 4, 5, 6])
+def test_reject_reach_value_of_zero_one_loss(k: int) -> None:
+    zero_one = 1.0 - np.eye(k)
+    # Chow 1970 (references.md CH-2): max posterior >= 1/K, so reject is used only when d < (K-1)/K.
+    assert reject_reach_value(zero_one) == pytest.approx((k - 1) / k, rel=1e-9)
+
+
+@pytest.mark.parametrize(("k", "value"), [(2, 0.5), (3, 0.6667), (5, 0.8)])
+def test_reject_reach_value_golden_lp_results(k: int, value: float) -> None:
+    # LP results listed in references.md CH-6.
+    assert reject_reach_value(1.0 - np.eye(k)) == pytest.approx(value, abs=5e-5)
+
+
+def test_reject_reach_value_golden_two_by_two() -> None:
+    # derived minimax value, references.md CH-6: c01 = 3, c10 = 1 -> 0.75
+    assert reject_reach_value(np.array([[0.0, 3.0], [1.0, 0.0]])) == pytest.approx(0.75, rel=1e-9)
+
+
+positive_costs = st.floats(min_value=0.01, max_value=1000.0, allow_nan=False, allow_infinity=False)
+
+
+@PROPERTY_SETTINGS
+@given(positive_costs, positive_costs)
+def test_reject_reach_value_of_a_zero_diagonal_two_by_two(c01: float, c10: float) -> None:
+    loss = np.array([[0.0, c01], [c10, 0.0]])
+    # derived minimax value, references.md CH-6: V = c01 c10 / (c01 + c10)
+    assert reject_reach_value(loss) == pytest.approx(c01 * c10 / (c01 + c10), rel=1e-9)
+
+
+@PROPERTY_SETTINGS
+@given(st.integers(2, 6), st.floats(min_value=0.01, max_value=100.0), st.floats(min_value=-50.0, max_value=50.0))
+def test_reject_reach_value_scales_and_shifts_with_the_losses(k: int, scale: float, shift: float) -> None:
+    # Chow 1970 (references.md CH-2) for 0-1 loss; V(s·λ + c) = s·V(λ) + c since Σ_j p_j = 1 (references.md EL-5).
+    loss = scale * (1.0 - np.eye(k)) + shift
+    expected = scale * (k - 1) / k + shift
+    assert reject_reach_value(loss) == pytest.approx(expected, rel=1e-9, abs=1e-9)
+
+
+# --- the reject-never-taken warning -------------------------------------------------------------------
+
+TEMPLATE = """\
+policy: generated
+classes: [ok, bad]
+priors: {{ok: 0.5, bad: 0.5}}
+actions: [accept, refuse]
+loss:
+  accept: {{ok: 0, bad: {c01!r}}}
+  refuse: {{ok: {c10!r}, bad: 0}}
+reject: {{action: defer, cost: {d!r}}}
+evidence: {{kind: log-likelihood, columns: {{ok: l_ok, bad: l_bad}}}}
+"""
+
+
+@PROPERTY_SETTINGS
+@given(
+    positive_costs,
+    positive_costs,
+    st.floats(min_value=0.0, max_value=1200.0, allow_nan=False, allow_infinity=False),
+    st.booleans(),
+)
+def test_reject_never_taken_exactly_when_cost_reaches_v(c01: float, c10: float, d: float, at_v: bool) -> None:
+    # derived minimax value, references.md CH-6: deferring at cost d is ever taken iff d < V.
+    value = c01 * c10 / (c01 + c10)
+    if at_v:
+        d = value  # ties go to the action, so a cost of exactly V is never taken
+    else:
+        assume(abs(d - value) > 1e-6 * max(1.0, c01, c10))
+    report = check_document(parse_source(TEMPLATE.format(c01=c01, c10=c10, d=d), "generated.yaml"))
+    assert report.policy is not None and report.policy.reject_cost() == d
+    assert not report.has_errors, report.diagnostics
+    fired = [x for x in report.diagnostics if x.code == "reject-never-taken"]
+    assert len(fired) == (1 if d >= value else 0)
+    assert all(x.line == 8 for x in fired)

@@ -1,0 +1,161 @@
+"""Consistency rules, one fixture file per rule, plus the demo policies under every rule.
+
+Each ``tests/fixtures/check/<rule>.yaml`` is a YAML list of cases::
+
+    - title: what the case shows
+      files: {train.csv: "..."}      # optional: written next to the policy first
+      policy: |
+        policy: ...
+      expect:
+        - {code: some-code, line: 3}   # optional severity: error | warning | info
+
+The test runs only that rule on the policy and compares the multiset of
+(code, line) with ``expect``; a stated severity must match too.
+"""
+
+from __future__ import annotations
+
+import inspect
+import re
+from collections import Counter
+from pathlib import Path
+from typing import Any
+
+import pytest
+import yaml
+
+from policyc.language import checks as check
+from policyc.language.checks import RULES, CheckContext, check_document, check_file, run_rules
+from policyc.language.diagnostics import Severity
+from policyc.language.model import build_policy
+from policyc.language.source import parse_source
+
+ROOT = Path(__file__).resolve().parents[2]
+FIXTURES = ROOT / "tests" / "fixtures" / "check"
+DEMOS = sorted((ROOT / "policies-demo").glob("*/policy*.yaml"))
+RULES_BY_NAME = {rule.__name__: rule for rule in RULES}
+
+
+def load_cases() -> list[Any]:
+    params = []
+    for path in sorted(FIXTURES.glob("*.yaml")):
+        cases = yaml.safe_load(path.read_text(encoding="utf-8"))
+        assert isinstance(cases, list) and cases, f"{path.name} must hold a non-empty list of cases"
+        for index, case in enumerate(cases):
+            params.append(pytest.param(path.stem, case, id=f"{path.stem}[{index}]"))
+    return params
+
+
+CASES = load_cases()
+
+
+def write_files(base: Path, files: dict[str, str]) -> None:
+    for relative, content in files.items():
+        target = base / relative
+        target.parent.mkdir(parents=True, exist_ok=True)
+        target.write_bytes(content.encode("utf-8"))
+
+
+@pytest.mark.parametrize(("rule_name", "case"), CASES)
+def test_rule_fixture(rule_name: str, case: dict[str, Any], tmp_path: Path) -> None:
+    assert set(case) <= {"title", "policy", "expect", "files"}, case.get("title")
+    assert case["title"] and isinstance(case["policy"], str)
+    rule = RULES_BY_NAME[rule_name]
+    write_files(tmp_path, case.get("files") or {})
+
+    report = check_document(parse_source(case["policy"], "policy.yaml", base_dir=tmp_path), rules=(rule,))
+
+    assert report.policy is not None, f"the policy does not build: {report.diagnostics}"
+    found = Counter((d.code, d.line) for d in report.diagnostics)
+    expected = Counter((e["code"], e["line"]) for e in case["expect"])
+    assert found == expected, case["title"]
+    for item in case["expect"]:
+        if "severity" in item:
+            severities = {d.severity for d in report.diagnostics if (d.code, d.line) == (item["code"], item["line"])}
+            assert severities == {Severity(item["severity"])}, case["title"]
+    assert all(d.file == "policy.yaml" and d.col is not None for d in report.diagnostics)
+
+
+def test_every_rule_has_a_fixture_file_and_every_file_names_a_rule() -> None:
+    files = {path.stem for path in FIXTURES.glob("*.yaml")}
+    assert files == set(RULES_BY_NAME)
+    assert len(RULES_BY_NAME) == len(RULES) == 15
+
+
+def test_every_code_the_rules_yield_has_a_fixture_case() -> None:
+    source = inspect.getsource(check)
+    codes = set(re.findall(r'(?:_error|_warning|Diagnostic)\(\s*"([a-z0-9-]+)"', source))
+    assert len(codes) > 20
+    covered = {item["code"] for param in CASES for item in param.values[1]["expect"]}
+    assert codes <= covered, sorted(codes - covered)
+
+
+def test_every_rule_has_a_clean_case_and_a_case_that_fires() -> None:
+    by_rule: dict[str, list[int]] = {}
+    for param in CASES:
+        rule_name, case = param.values
+        by_rule.setdefault(rule_name, []).append(len(case["expect"]))
+    for rule_name, counts in by_rule.items():
+        assert 0 in counts, f"{rule_name} has no clean case"
+        assert any(counts), f"{rule_name} has no case that fires"
+
+
+@pytest.mark.parametrize("path", DEMOS, ids=[f"{p.parent.name}/{p.stem}" for p in DEMOS])
+def test_demo_policies_pass_every_rule(path: Path) -> None:
+    report = check_file(path)
+    assert report.policy is not None
+    assert not report.has_errors, report.diagnostics
+    assert not report.has_warnings, report.diagnostics
+
+
+def test_there_are_demo_policies() -> None:
+    assert len(DEMOS) >= 2
+
+
+def test_fail_fast_stops_at_the_first_error() -> None:
+    text = """\
+policy: p
+classes: [ok, ok]
+priors: {ok: 0.5, bad: 0.6}
+actions: [accept, accept]
+loss: {accept: {ok: 0}}
+evidence: {kind: log-likelihood, columns: {ok: l_ok}}
+"""
+    document = parse_source(text)
+    everything = check_document(document)
+    assert len([d for d in everything.diagnostics if d.is_error]) > 1
+    first = check_document(document, fail_fast=True)
+    assert [d.code for d in first.diagnostics] == ["too-few-classes"]
+
+
+def test_schema_errors_stop_before_the_rules() -> None:
+    report = check_document(parse_source("policy: p\nclasses: [a, b]\n", "p.yaml"))
+    assert report.policy is None
+    assert report.has_errors
+    missing = sorted(d.path for d in report.diagnostics if d.code == "missing-key")
+    assert missing == [("actions",), ("evidence",), ("priors",)]
+
+
+def test_diagnostics_come_in_source_order() -> None:
+    text = """\
+policy: p
+classes: [ok, bad, ok]
+priors: {ok: 0.6, bad: 0.6}
+actions: [accept, refuse]
+loss:
+  accept: {ok: 0, bad: 10}
+  refuse: {ok: 1, bad: 0}
+invalid_input: reject
+evidence: {kind: log-likelihood, columns: {ok: l_ok, bad: l_bad}}
+"""
+    report = check_document(parse_source(text))
+    lines = [d.line for d in report.diagnostics]
+    assert lines == sorted(lines) == [2, 3, 8]
+
+
+def test_rules_yield_paths_and_the_driver_adds_positions() -> None:
+    text = "policy: p\nclasses: [a, b]\npriors: {a: 0.5, b: 0.6}\nactions: [x]\nloss: {x: {a: 0, b: 0}}\n"
+    text += "evidence: {kind: log-likelihood, columns: {a: la, b: lb}}\n"
+    policy = build_policy(parse_source(text))
+    (raw,) = run_rules(policy, CheckContext(), rules=(RULES_BY_NAME["priors_are_a_distribution"],))
+    assert (raw.path, raw.line, raw.file) == (("priors",), None, None)

@@ -1,0 +1,229 @@
+"""`policyc evaluate`: risk, errors, rejects, confusion, the risk-reject curve and calibration.
+
+Outside checks name their source beside the assertion: a hand-computed table, Chow's error-reject
+trade-off (references.md CH-3) and its closed form for two Gaussians (references.md CH-5, recomputed
+with scipy.stats.norm), and scikit-learn's calibration_curve for the reliability table.
+"""
+
+from __future__ import annotations
+
+import csv
+import json
+import textwrap
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+import scipy.stats
+from click.testing import CliRunner
+from sklearn.calibration import calibration_curve
+
+from policyc.cli import main
+from policyc.review.evaluate.evaluation import evaluate
+from policyc.review.shared.loading import load_rule_or_policy
+
+ROOT = Path(__file__).resolve().parents[2]
+CLAIMS = ROOT / "policies-demo" / "claims"
+PACKHOUSE = ROOT / "policies-demo" / "packhouse"
+
+# Hand-computed: two classes, q = P(bad | x) given directly (trained priors = deployment priors, so the
+# prior correction leaves q unchanged). R(accept) = 10 q, R(decline) = 1 - q, R(hold) = 0.8:
+# accept for q <= 0.08, hold for 0.08 < q < 0.2, decline for q >= 0.2.
+HAND_POLICY = """\
+policy: hand-computed
+revision: 1
+classes: [ok, bad]
+priors: {ok: 0.7, bad: 0.3}
+actions: [accept, decline]
+loss_unit: EUR per case
+loss:
+  accept: {ok: 0, bad: 10}
+  decline: {ok: 1, bad: 0}
+reject: {action: hold, cost: 0.8}
+evidence:
+  kind: posterior
+  columns: {ok: p_ok, bad: p_bad}
+  trained_priors: {ok: 0.7, bad: 0.3}
+  calibration: {method: none}
+"""
+# (q, true class) -> decision, loss
+HAND_ROWS = [
+    (0.01, "ok"),  # accept, 0
+    (0.05, "bad"),  # accept, 10 (error)
+    (0.10, "ok"),  # hold, 0.8
+    (0.15, "bad"),  # hold, 0.8
+    (0.50, "bad"),  # decline, 0
+    (0.90, "ok"),  # decline, 1 (error)
+    (0.02, "ok"),  # accept, 0
+    (0.30, "bad"),  # decline, 0
+]
+
+
+@pytest.fixture
+def hand(tmp_path: Path) -> tuple[Path, Path]:
+    policy = tmp_path / "hand.yaml"
+    policy.write_text(HAND_POLICY, encoding="utf-8")
+    data = tmp_path / "hand.csv"
+    with data.open("w", newline="", encoding="utf-8") as handle:
+        writer = csv.writer(handle)
+        writer.writerow(["p_ok", "p_bad", "truth"])
+        writer.writerows([[f"{1 - q:.2f}", f"{q:.2f}", label] for q, label in HAND_ROWS])
+    return policy, data
+
+
+def test_hand_computed_confusion_risk_and_rates(hand: tuple[Path, Path]) -> None:
+    policy, data = hand
+    result = evaluate(load_rule_or_policy(policy), data, "truth", batch_rows=3)
+    # hand-computed: rows = true class (ok, bad), columns = action (accept, decline, hold)
+    assert result.confusion.tolist() == [[2, 1, 1], [1, 2, 1]]
+    assert result.risk.estimate == pytest.approx((10 + 0.8 + 0.8 + 1) / 8, abs=1e-12)  # hand-computed: 12.6 / 8
+    assert result.reject_rate == pytest.approx(2 / 8, abs=1e-12)  # hand-computed
+    assert result.error_rate == pytest.approx(2 / 8, abs=1e-12)  # hand-computed: errors among all rows
+    assert result.accepted_error_rate == pytest.approx(2 / 6, abs=1e-12)  # hand-computed: errors among accepted
+    assert result.errors_by_class.tolist() == [1, 1]  # hand-computed: one ok declined, one bad accepted
+    own = next(p for p in result.curve if p.own)
+    assert (own.reject_cost, own.risk, own.reject_rate, own.error_rate) == pytest.approx(
+        (0.8, result.risk.estimate, result.reject_rate, result.error_rate), abs=1e-12
+    )
+    assert result.risk.low <= result.risk.estimate <= result.risk.high
+    # V = c01 c10 / (c01 + c10) for a zero-diagonal 2x2 loss = 10 / 11 (references.md CH-6)
+    assert result.reach_value == pytest.approx(10 / 11, abs=1e-9)
+
+
+def test_cli_reports_and_json_shape(hand: tuple[Path, Path]) -> None:
+    policy, data = hand
+    result = CliRunner().invoke(main, ["evaluate", str(policy), str(data), "--label", "truth", "--format", "json"])
+    assert result.exit_code == 0, result.output
+    report = json.loads(result.stdout)
+    assert report["confusion"]["counts"] == [[2, 1, 1], [1, 2, 1]]  # hand-computed
+    assert report["per_class"][0]["action_shares"] == {"accept": 0.5, "decline": 0.25, "hold": 0.25}
+    assert report["calibration"]["warning"] is True  # eight rows cannot be calibrated
+    for output_format in ("text", "markdown"):
+        shown = CliRunner().invoke(
+            main, ["evaluate", str(policy), str(data), "--label", "truth", "--format", output_format]
+        )
+        assert shown.exit_code == 0 and "WARNING: expected calibration error above 0.05" in shown.stdout
+        assert "1.575" in shown.stdout and "EUR per case" in shown.stdout
+
+
+def test_unknown_label_names_the_row(hand: tuple[Path, Path]) -> None:
+    policy, data = hand
+    lines = data.read_text(encoding="utf-8").splitlines()
+    lines[4] = lines[4].replace("bad", "maybe")  # data row 4
+    data.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    result = CliRunner().invoke(main, ["evaluate", str(policy), str(data), "--label", "truth"])
+    assert result.exit_code == 1
+    assert "column 'truth', row 4: label 'maybe' is not a class of the rule (ok, bad)" in result.stderr
+
+
+def test_the_risk_reject_curve_is_monotone_as_chow_states() -> None:
+    for policy, data, label in [
+        (PACKHOUSE / "policy.yaml", PACKHOUSE / "holdout.csv", "grade"),
+        (CLAIMS / "policy.yaml", CLAIMS / "holdout.csv", "outcome"),
+    ]:
+        result = evaluate(load_rule_or_policy(policy), data, label, curve_points=61)
+        reject = np.array([p.reject_rate for p in result.curve])
+        error = np.array([p.error_rate for p in result.curve])
+        # Chow 1970 / Fukunaga p. 78 (references.md CH-3): as the reject threshold rises the reject rate
+        # falls from 1 and the error rate rises; the accepted sets are nested, so this holds exactly
+        assert reject[0] == 1.0 and error[0] == 0.0 and reject[-1] == 0.0
+        assert (np.diff(reject) <= 0).all() and (np.diff(error) >= 0).all()
+        assert result.curve[-1].error_rate == pytest.approx(result.curve[-1].accepted_error_rate)
+
+
+def chow_closed_form(t: float, p1: float = 0.3, delta: float = 2.0) -> tuple[float, float]:
+    """E and R of Chow's rule for N(0,1) vs N(delta,1), 0-1 loss (references.md CH-5), with scipy.stats.norm.
+
+    L = ln p1(x)/p2(x) is N(Δ²/2, Δ²) under class 1 and N(-Δ²/2, Δ²) under class 2; accept class 1 iff
+    L + b >= a, class 2 iff L + b <= -a, else reject; b = ln(P1/P2), a = ln((1-t)/t).
+    """
+    p2 = 1.0 - p1
+    b, a = np.log(p1 / p2), np.log((1.0 - t) / t)
+    mean, sd = delta**2 / 2.0, delta
+    under_1, under_2 = scipy.stats.norm(mean, sd), scipy.stats.norm(-mean, sd)
+    error = p1 * under_1.cdf(-a - b) + p2 * under_2.sf(a - b)
+    reject = p1 * (under_1.cdf(a - b) - under_1.cdf(-a - b)) + p2 * (under_2.cdf(a - b) - under_2.cdf(-a - b))
+    return float(error), float(reject)
+
+
+@pytest.mark.parametrize(
+    ("t", "table_error", "table_reject"),
+    # references.md CH-5 table values (E = error among all samples, R = reject rate)
+    [(0.1, 0.0181723, 0.4524081), (0.2, 0.0426365, 0.2840895), (0.3, 0.0702430, 0.1726107)],
+)
+def test_closed_form_recomputed_matches_the_table(t: float, table_error: float, table_reject: float) -> None:
+    error, reject = chow_closed_form(t)
+    assert error == pytest.approx(table_error, abs=1e-6)  # references.md CH-5
+    assert reject == pytest.approx(table_reject, abs=1e-6)  # references.md CH-5
+
+
+def test_error_and_reject_rates_match_chows_closed_form_for_two_gaussians(tmp_path: Path) -> None:
+    n = 100_000  # E at t = 0.1 has a standard error of sqrt(0.018 * 0.982 / n) ≈ 4.2e-4
+    rng = np.random.default_rng(20240611)
+    first = rng.random(n) < 0.3
+    x = np.where(first, rng.normal(0.0, 1.0, n), rng.normal(2.0, 1.0, n))
+    table = pa.table(
+        {
+            "ll_one": scipy.stats.norm.logpdf(x, 0.0, 1.0),
+            "ll_two": scipy.stats.norm.logpdf(x, 2.0, 1.0),
+            "truth": np.where(first, "one", "two"),
+        }
+    )
+    pq.write_table(table, tmp_path / "sample.parquet")
+    policy = tmp_path / "chow.yaml"
+    policy.write_text(
+        textwrap.dedent(
+            """\
+            policy: chow-two-gaussians
+            classes: [one, two]
+            priors: {one: 0.3, two: 0.7}
+            actions: [say_one, say_two]
+            loss:
+              say_one: {one: 0, two: 1}
+              say_two: {one: 1, two: 0}
+            reject: {action: reject, cost: 0.2}
+            evidence: {kind: log-likelihood, columns: {one: ll_one, two: ll_two}}
+            """
+        ),
+        encoding="utf-8",
+    )
+    result = evaluate(load_rule_or_policy(policy), tmp_path / "sample.parquet", "truth", extra_costs=(0.1, 0.3))
+    points = {p.reject_cost: p for p in result.curve}
+    for t in (0.1, 0.2, 0.3):
+        error, reject = chow_closed_form(t)  # references.md CH-5, recomputed with scipy.stats.norm
+        measured = points[t]
+        assert abs(measured.error_rate - error) <= 3.0 * np.sqrt(error * (1 - error) / n)
+        assert abs(measured.reject_rate - reject) <= 3.0 * np.sqrt(reject * (1 - reject) / n)
+    assert result.reach_value == pytest.approx(0.5, abs=1e-9)  # V = (K - 1)/K under 0-1 loss (references.md CH-2)
+
+
+def test_calibration_table_is_sklearns_on_the_corrected_posteriors() -> None:
+    loaded = load_rule_or_policy(CLAIMS / "policy.yaml")
+    result = evaluate(loaded, CLAIMS / "holdout.csv", "outcome", batch_rows=700)
+    assert result.calibration is not None
+    with (CLAIMS / "holdout.csv").open(newline="", encoding="utf-8") as handle:
+        rows = list(csv.DictReader(handle))
+    X = np.array([[float(row[f]) for f in loaded.rule.features] for row in rows])
+    fraud = np.array([row["outcome"] == "fraudulent" for row in rows])
+    corrected = loaded.rule.posteriors(X)[:, 1]  # the upstream probabilities corrected to the deployment priors
+    # scikit-learn calibration_curve, 10 uniform bins (its bins are right-closed, like ours)
+    observed, predicted = calibration_curve(fraud, corrected, n_bins=10, strategy="uniform")
+    table = result.calibration.tables[1]
+    assert np.allclose([b.observed for b in table], observed, rtol=0, atol=1e-12)
+    assert np.allclose([b.mean_predicted for b in table], predicted, rtol=0, atol=1e-12)
+    counts = np.array([b.count for b in table])
+    # ECE = Σ_b (n_b / N) |observed_b - predicted_b| over scikit-learn's bins
+    assert result.calibration.ece[1] == pytest.approx(float(np.sum(counts * np.abs(observed - predicted)) / len(rows)))
+    raw = np.array([float(row["p_fraudulent"]) for row in rows])
+    assert not np.allclose(calibration_curve(fraud, raw, n_bins=10)[1], predicted)  # the raw scores are not used
+
+
+def test_a_curve_picture_is_written(hand: tuple[Path, Path], tmp_path: Path) -> None:
+    policy, data = hand
+    picture = tmp_path / "curve.png"
+    result = CliRunner().invoke(
+        main, ["evaluate", str(policy), str(data), "--label", "truth", "--plot-curve", str(picture)]
+    )
+    assert result.exit_code == 0 and picture.stat().st_size > 1000

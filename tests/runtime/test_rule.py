@@ -1,0 +1,437 @@
+"""The numpy-only runtime: artefact verification, the decision API, input validation, numerics."""
+
+from __future__ import annotations
+
+import io
+import json
+import threading
+import zipfile
+from concurrent.futures import ThreadPoolExecutor
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pytest
+import scipy.special
+import scipy.stats
+from helpers import (
+    DEMOS,
+    PACKHOUSE,
+    gaussian_rule,
+    policy_text,
+    posterior_evidence,
+    random_spd,
+    read_csv_columns,
+    rule_from_text,
+    two_class_text,
+)
+
+from policyc.compiler import write_artefact
+from policyc.compiler.build import compile_policy
+from policyc.runtime import FORMAT_VERSION, ArtefactError, InputError, Rule, load_rule
+from policyc.runtime.artefact import content_hash
+
+# --- fixtures and artefact surgery ------------------------------------------------------------------
+
+
+@pytest.fixture(scope="module")
+def packhouse_file(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    path = tmp_path_factory.mktemp("rules") / "packhouse.rule"
+    write_artefact(compile_policy(PACKHOUSE).rule, path)
+    return path
+
+
+@pytest.fixture(scope="module")
+def packhouse(packhouse_file: Path) -> Rule:
+    return load_rule(packhouse_file)
+
+
+@pytest.fixture(scope="module")
+def incoming(packhouse: Rule) -> np.ndarray:
+    return read_csv_columns(DEMOS / "packhouse" / "incoming.csv", packhouse.features)
+
+
+def members(data: bytes) -> dict[str, bytes]:
+    with zipfile.ZipFile(io.BytesIO(data)) as archive:
+        return {name: archive.read(name) for name in archive.namelist()}
+
+
+def rezip(contents: dict[str, bytes]) -> bytes:
+    """A fresh, internally consistent ZIP (valid CRCs) holding ``contents``."""
+    output = io.BytesIO()
+    with zipfile.ZipFile(output, "w", compression=zipfile.ZIP_STORED) as archive:
+        for name, data in contents.items():
+            archive.writestr(name, data)
+    return output.getvalue()
+
+
+def canonical(manifest: dict[str, Any]) -> bytes:
+    return json.dumps(manifest, sort_keys=True, separators=(",", ":"), ensure_ascii=False).encode()
+
+
+def rewrite(path: Path, target: Path, change_manifest: Any = None, drop: str | None = None) -> Path:
+    """Copy a rule file, editing its manifest and re-hashing it so that only the edit can fail."""
+    contents = members(path.read_bytes())
+    manifest = json.loads(contents["manifest.json"])
+    if change_manifest is not None:
+        change_manifest(manifest)
+    if drop is not None:
+        del contents[f"arrays/{drop}.npy"]
+    blobs = {
+        name: contents[f"arrays/{name}.npy"] for name in manifest.get("arrays", {}) if f"arrays/{name}.npy" in contents
+    }
+    manifest["content_sha256"] = content_hash(manifest, blobs)
+    contents["manifest.json"] = canonical(manifest)
+    target.write_bytes(rezip(contents))
+    return target
+
+
+# --- artefact verification ---------------------------------------------------------------------------
+
+
+def test_load_rule_round_trips_the_compiled_rule(packhouse_file: Path) -> None:
+    compiled = compile_policy(PACKHOUSE).rule
+    loaded = load_rule(packhouse_file)
+    assert dict(loaded.manifest) == dict(compiled.manifest)
+    assert set(loaded.params) == set(compiled.params)
+    for name in compiled.params:
+        assert np.array_equal(loaded.params[name], compiled.params[name]), name
+    assert loaded.classes == ("premium", "standard", "defect")
+    assert loaded.actions == ("pack_premium", "pack_standard", "juice", "hold_for_inspector")
+    assert loaded.features == ("firmness_n", "blush_frac", "mass_g", "brix")
+
+
+def test_tampered_array_fails_the_content_hash(packhouse_file: Path, tmp_path: Path) -> None:
+    contents = members(packhouse_file.read_bytes())
+    blob = bytearray(contents["arrays/loss.npy"])
+    blob[-1] ^= 0x01  # last byte of the last float64 of the loss matrix
+    contents["arrays/loss.npy"] = bytes(blob)
+    tampered = tmp_path / "tampered.rule"
+    tampered.write_bytes(rezip(contents))
+    with pytest.raises(ArtefactError, match="content hash mismatch"):
+        load_rule(tampered)
+
+
+def test_flipped_byte_in_the_file_is_refused(packhouse_file: Path, tmp_path: Path) -> None:
+    data = bytearray(packhouse_file.read_bytes())
+    with zipfile.ZipFile(packhouse_file) as archive:
+        info = archive.getinfo("arrays/loss.npy")
+    # local header: 30 bytes + name + extra, then the stored .npy bytes; flip inside the array data
+    start = info.header_offset + 30 + len(info.filename.encode()) + len(info.extra)
+    data[start + info.compress_size - 3] ^= 0x10
+    flipped = tmp_path / "flipped.rule"
+    flipped.write_bytes(bytes(data))
+    # The ZIP CRC notices first ("corrupt"); either way the rule is refused, naming the member or the hash.
+    with pytest.raises(ArtefactError, match=r"loss\.npy.*corrupt|content hash"):
+        load_rule(flipped)
+
+
+def test_newer_major_format_version_is_refused_by_name(packhouse_file: Path, tmp_path: Path) -> None:
+    newer = rewrite(packhouse_file, tmp_path / "v2.rule", lambda m: m.update(format_version="2.0"))
+    with pytest.raises(ArtefactError, match=r"format_version 2\.0 is newer") as info:
+        load_rule(newer)
+    assert FORMAT_VERSION in str(info.value)
+    assert "hash" not in str(info.value)
+
+
+def test_newer_minor_format_version_is_accepted(packhouse_file: Path, tmp_path: Path) -> None:
+    major = FORMAT_VERSION.split(".")[0]
+    newer_minor = rewrite(packhouse_file, tmp_path / "minor.rule", lambda m: m.update(format_version=f"{major}.9"))
+    assert load_rule(newer_minor).manifest["format_version"] == f"{major}.9"
+
+
+def test_older_major_and_malformed_versions_are_refused(packhouse_file: Path, tmp_path: Path) -> None:
+    older = rewrite(packhouse_file, tmp_path / "v0.rule", lambda m: m.update(format_version="0.3"))
+    with pytest.raises(ArtefactError, match=r"format_version 0\.3 is older"):
+        load_rule(older)
+    garbled = rewrite(packhouse_file, tmp_path / "vx.rule", lambda m: m.update(format_version="one"))
+    with pytest.raises(ArtefactError, match="format_version"):
+        load_rule(garbled)
+
+
+def test_wrong_format_name_is_refused(packhouse_file: Path, tmp_path: Path) -> None:
+    other = rewrite(packhouse_file, tmp_path / "other.rule", lambda m: m.update(format="some-other-format"))
+    with pytest.raises(ArtefactError, match="'format'"):
+        load_rule(other)
+
+
+def test_missing_array_member_is_refused(packhouse_file: Path, tmp_path: Path) -> None:
+    missing = rewrite(packhouse_file, tmp_path / "missing.rule", drop="whitening")
+    with pytest.raises(ArtefactError, match=r"arrays/whitening\.npy.*missing"):
+        load_rule(missing)
+
+
+def test_array_absent_from_manifest_and_file_is_refused(packhouse_file: Path, tmp_path: Path) -> None:
+    def forget(manifest: dict[str, Any]) -> None:
+        del manifest["arrays"]["log_priors"]
+
+    missing = rewrite(packhouse_file, tmp_path / "forgot.rule", forget, drop="log_priors")
+    with pytest.raises(ArtefactError, match=r"log_priors.*missing"):
+        load_rule(missing)
+
+
+def test_shape_disagreeing_with_manifest_is_refused(packhouse_file: Path, tmp_path: Path) -> None:
+    bad = rewrite(packhouse_file, tmp_path / "shape.rule", lambda m: m["arrays"].update(loss=[3, 3]))
+    with pytest.raises(ArtefactError, match="'loss' has shape"):
+        load_rule(bad)
+
+
+def test_shape_disagreeing_with_classes_is_refused(packhouse_file: Path, tmp_path: Path) -> None:
+    def drop_class(manifest: dict[str, Any]) -> None:
+        manifest["classes"] = manifest["classes"][:2]
+
+    bad = rewrite(packhouse_file, tmp_path / "classes.rule", drop_class)
+    with pytest.raises(ArtefactError, match="'log_priors' has shape"):
+        load_rule(bad)
+
+
+def test_unreadable_and_non_archive_files_are_refused(tmp_path: Path) -> None:
+    with pytest.raises(ArtefactError, match="cannot read"):
+        load_rule(tmp_path / "absent.rule")
+    junk = tmp_path / "junk.rule"
+    junk.write_bytes(b"policy: not a rule\n")
+    with pytest.raises(ArtefactError, match="not a ZIP"):
+        load_rule(junk)
+
+
+# --- the decision API ----------------------------------------------------------------------------------
+
+
+def test_shapes_and_consistency_of_the_api(packhouse: Rule, incoming: np.ndarray) -> None:
+    n, n_classes, n_actions = incoming.shape[0], len(packhouse.classes), len(packhouse.actions)
+    decisions = packhouse.decide(incoming)
+    posteriors = packhouse.posteriors(incoming)
+    risks = packhouse.risks(incoming)
+    assert decisions.shape == (n,) and decisions.dtype.kind == "i"
+    assert posteriors.shape == (n, n_classes)
+    assert risks.shape == (n, n_actions)
+    assert np.allclose(posteriors.sum(axis=1), 1.0, rtol=0, atol=1e-12)
+    assert ((posteriors >= 0) & (posteriors <= 1)).all()
+    # R(a|x) = Σ_k λ(a|k) P(k|x) (Fukunaga 1990 eq. 3.19, references.md LR-1); reject row constant d
+    assert np.allclose(risks, posteriors @ packhouse.params["loss"].T, rtol=1e-12, atol=1e-12)
+    # R(reject|x) = d Σ_k P(k|x) = d up to the rounding of the posterior sum
+    assert np.allclose(risks[:, -1], 2.5, rtol=0, atol=1e-12)
+    assert np.array_equal(decisions, np.argmin(risks, axis=1))
+    names = packhouse.decide_names(incoming)
+    assert names.tolist() == [packhouse.actions[i] for i in decisions]
+    assert len(set(decisions.tolist())) == n_actions  # the demo data reaches every action, reject included
+
+
+def test_explain_agrees_with_decide(packhouse: Rule, incoming: np.ndarray) -> None:
+    explanation = packhouse.explain(incoming)
+    assert np.array_equal(explanation.action, packhouse.decide(incoming))
+    assert np.array_equal(explanation.posteriors, packhouse.posteriors(incoming))
+    assert np.array_equal(explanation.risks, packhouse.risks(incoming))
+    assert explanation.valid.all()
+    assert (explanation.margin >= 0).all()
+    assert (explanation.runner_up != explanation.action).all()
+    rows = np.arange(incoming.shape[0])
+    sorted_risks = np.sort(explanation.risks, axis=1)
+    assert np.array_equal(explanation.risks[rows, explanation.runner_up], sorted_risks[:, 1])
+    assert np.allclose(explanation.margin, sorted_risks[:, 1] - sorted_risks[:, 0], rtol=0, atol=1e-12)
+
+
+def test_decide_one_by_feature_name(packhouse: Rule, incoming: np.ndarray) -> None:
+    for row in incoming[:20]:
+        record = dict(zip(packhouse.features, row.tolist(), strict=True))
+        shuffled = dict(reversed(list(record.items())))  # order of the mapping does not matter
+        assert packhouse.decide_one(shuffled) == packhouse.decide_names(row[None, :])[0]
+    record = dict(zip(packhouse.features, incoming[0].tolist(), strict=True))
+    with pytest.raises(InputError, match="missing feature"):
+        packhouse.decide_one({k: v for k, v in record.items() if k != "brix"})
+    with pytest.raises(InputError, match="unknown field"):
+        packhouse.decide_one(record | {"colour": 1.0})
+    with pytest.raises(InputError, match="must be a number"):
+        packhouse.decide_one(record | {"brix": "15"})
+    with pytest.raises(InputError, match="must be a number"):
+        packhouse.decide_one(record | {"brix": True})
+
+
+def test_float32_input_matches_float64(packhouse: Rule, incoming: np.ndarray) -> None:
+    single = incoming.astype(np.float32)
+    # Rounding the inputs to float32 moves them by ~1e-7 relative: decisions may only differ where
+    # the float64 margin is that small (none in the demo data), posteriors by < 1e-6.
+    clear = packhouse.explain(incoming).margin > 1e-4
+    assert clear.mean() > 0.95
+    assert np.array_equal(packhouse.decide(single)[clear], packhouse.decide(incoming)[clear])
+    assert np.abs(packhouse.posteriors(single) - packhouse.posteriors(incoming)).max() < 1e-6
+    # The float32 values themselves, widened exactly, give identical results.
+    assert np.array_equal(packhouse.posteriors(single), packhouse.posteriors(single.astype(np.float64)))
+
+
+@pytest.mark.parametrize(
+    ("array", "message"),
+    [
+        (np.zeros((3, 3)), "expected 4 feature columns, got 3"),
+        (np.zeros((3, 5)), "expected 4 feature columns, got 5"),
+        (np.array([["a", "b", "c", "d"]]), "numeric"),
+        (np.array([[1.0, None, 2.0, 3.0]], dtype=object), "numeric"),
+        (np.zeros((3, 4), dtype=complex), "numeric"),
+        (np.zeros(4), "2-D"),
+        (np.zeros((2, 2, 4)), "2-D"),
+        (np.zeros((0, 4)), "no rows"),
+    ],
+    ids=["narrow", "wide", "strings", "object", "complex", "1-D", "3-D", "empty"],
+)
+def test_bad_input_raises_input_error(packhouse: Rule, array: np.ndarray, message: str) -> None:
+    for method in (packhouse.decide, packhouse.posteriors, packhouse.risks, packhouse.explain):
+        with pytest.raises(InputError, match=message):
+            method(array)
+
+
+def test_integer_and_list_input_is_accepted(packhouse: Rule, incoming: np.ndarray) -> None:
+    rounded = np.round(incoming[:10]).astype(np.int64)
+    assert np.array_equal(packhouse.decide(rounded), packhouse.decide(rounded.astype(float)))
+    assert np.array_equal(packhouse.decide(incoming[:10].tolist()), packhouse.decide(incoming[:10]))
+
+
+def test_invalid_rows_are_rejected_under_invalid_input_reject(packhouse: Rule, incoming: np.ndarray) -> None:
+    X = incoming[:6].copy()
+    X[1, 0] = np.nan
+    X[3, 2] = np.inf
+    X[4, 3] = -np.inf
+    explanation = packhouse.explain(X)
+    reject = packhouse.actions.index("hold_for_inspector")
+    assert packhouse.decide(X)[[1, 3, 4]].tolist() == [reject] * 3
+    assert np.array_equal(explanation.valid, [True, False, True, False, False, True])
+    assert np.isnan(packhouse.posteriors(X)[[1, 3, 4]]).all()
+    assert np.isnan(packhouse.risks(X)[[1, 3, 4]]).all()
+    assert np.isnan(explanation.margin[[1, 3, 4]]).all() and (explanation.runner_up[[1, 3, 4]] == -1).all()
+    # valid rows are decided as if alone
+    good = [0, 2, 5]
+    assert np.array_equal(packhouse.decide(X)[good], packhouse.decide(incoming[good]))
+    assert np.array_equal(packhouse.posteriors(X)[good], packhouse.posteriors(incoming[good]))
+
+
+def test_invalid_rows_raise_naming_the_rows_under_invalid_input_error(packhouse: Rule, incoming: np.ndarray) -> None:
+    strict = Rule(dict(packhouse.manifest) | {"invalid_input": "error"}, dict(packhouse.params))
+    X = incoming[:8].copy()
+    X[2, 1] = np.nan
+    X[7, 0] = -np.inf
+    for method in (strict.decide, strict.decide_names, strict.posteriors, strict.risks, strict.explain):
+        with pytest.raises(InputError, match=r"row\(s\) 2, 7 \(0-based\)"):
+            method(X)
+    assert np.array_equal(strict.decide(incoming[:8]), packhouse.decide(incoming[:8]))
+
+
+def test_log_likelihood_evidence_treats_plus_infinity_as_invalid_and_minus_infinity_as_impossible() -> None:
+    rule = rule_from_text(
+        two_class_text(
+            reject_cost=0.2,
+            invalid_input="reject",
+        )
+    )
+    X = np.array([[-np.inf, -3.0], [np.inf, 0.0], [-np.inf, -np.inf], [0.0, np.nan]])
+    assert rule.decide(X).tolist() == [1, 2, 2, 2]
+    assert rule.posteriors(X)[0].tolist() == [0.0, 1.0]
+    assert rule.explain(X).valid.tolist() == [True, False, False, False]
+
+
+def test_far_field_posteriors_are_finite_and_match_scipy_softmax() -> None:
+    rng = np.random.default_rng(7)
+    d, n_classes = 3, 3
+    means = rng.normal(0.0, 2.0, (n_classes, d))
+    covariances = np.array([random_spd(rng, d, 0.5, 2.0) for _ in range(n_classes)])
+    priors = np.array([0.2, 0.3, 0.5])
+    loss = 1.0 - np.eye(n_classes)
+    rule = gaussian_rule(means, covariances, priors, loss, reject_cost=0.3)
+    # 50 standard deviations (of the widest class) away from every mean, in random directions
+    directions = rng.normal(size=(200, d))
+    directions /= np.linalg.norm(directions, axis=1, keepdims=True)
+    sigma = np.sqrt(max(np.linalg.eigvalsh(c)[-1] for c in covariances))
+    X = means.mean(axis=0) + (50.0 * sigma + np.linalg.norm(means, axis=1).max()) * directions
+    log_joint = np.column_stack(
+        [scipy.stats.multivariate_normal(means[k], covariances[k]).logpdf(X) for k in range(n_classes)]
+    ) + np.log(priors)
+    # in linear space every density underflows to 0 and the posterior is 0/0
+    assert (np.exp(log_joint).max(axis=1) == 0.0).any()
+    posteriors = rule.posteriors(X)
+    assert np.isfinite(posteriors).all()
+    # Stable posteriors = softmax of the log joint (references.md MV-3)
+    expected = scipy.special.softmax(log_joint, axis=1)
+    assert np.allclose(posteriors, expected, rtol=1e-9, atol=1e-12)
+    assert np.isfinite(rule.risks(X)).all()
+
+
+def test_rule_arrays_are_read_only(packhouse: Rule) -> None:
+    for name, array in packhouse.params.items():
+        assert not array.flags.writeable, name
+        with pytest.raises(ValueError, match="read-only"):
+            array[...] = 0.0
+    with pytest.raises(TypeError):
+        packhouse.params["loss"] = np.zeros((4, 3))  # type: ignore[index]
+    with pytest.raises(TypeError):
+        packhouse.manifest["classes"] = []  # type: ignore[index]
+
+
+def test_rule_copies_the_arrays_it_is_built_from() -> None:
+    log_priors = np.log([0.5, 0.5])
+    loss = np.array([[0.0, 1.0], [1.0, 0.0]])
+    manifest = {
+        "classes": ["c0", "c1"],
+        "actions": ["a0", "a1"],
+        "features": ["l0", "l1"],
+        "reject_action": None,
+        "evidence": {"kind": "log-likelihood"},
+        "invalid_input": "error",
+    }
+    rule = Rule(manifest, {"log_priors": log_priors, "loss": loss})
+    loss[0, 1] = 100.0
+    assert rule.params["loss"][0, 1] == 1.0
+    assert rule.decide(np.array([[0.0, 1.0]])).tolist() == [1]
+
+
+def test_concurrent_decisions_match_serial(packhouse: Rule, incoming: np.ndarray) -> None:
+    rng = np.random.default_rng(3)
+    # more rows than one kernel chunk, so threads interleave inside the chunk loop
+    X = incoming[rng.integers(0, incoming.shape[0], 10_000)] * rng.uniform(0.9, 1.1, (10_000, 4))
+    expected_decisions = packhouse.decide(X)
+    expected_posteriors = packhouse.posteriors(X)
+    barrier = threading.Barrier(6)
+
+    def work(_: int) -> tuple[np.ndarray, np.ndarray]:
+        barrier.wait()
+        return packhouse.decide(X), packhouse.posteriors(X)
+
+    with ThreadPoolExecutor(max_workers=6) as pool:
+        results = list(pool.map(work, range(6)))
+    for decisions, posteriors in results:
+        assert np.array_equal(decisions, expected_decisions)
+        assert np.array_equal(posteriors, expected_posteriors)
+
+
+def tie_rule(actions: list[str], loss: np.ndarray, reject_cost: float | None = None) -> Rule:
+    classes = ["c0", "c1"]
+    return rule_from_text(
+        policy_text(
+            classes=classes,
+            priors=[0.5, 0.5],
+            actions=actions,
+            loss=loss,
+            evidence=posterior_evidence(classes, [0.5, 0.5]),
+            reject_cost=reject_cost,
+        )
+    )
+
+
+def test_exact_ties_break_toward_the_earlier_action() -> None:
+    # P = (1/2, 1/2) exactly: ln ½ - ln ½ + ln ½ is the same float in both columns.
+    half = np.array([[0.5, 0.5]])
+    forward = tie_rule(["left", "right"], np.array([[0.0, 1.0], [1.0, 0.0]]))
+    assert forward.posteriors(half).tolist() == [[0.5, 0.5]]
+    assert forward.risks(half).tolist() == [[0.5, 0.5]]
+    assert forward.decide_names(half).tolist() == ["left"]
+    backward = tie_rule(["right", "left"], np.array([[1.0, 0.0], [0.0, 1.0]]))
+    assert backward.decide_names(half).tolist() == ["right"]
+    explanation = forward.explain(half)
+    assert explanation.runner_up.tolist() == [1] and explanation.margin.tolist() == [0.0]
+
+
+def test_a_tie_with_the_reject_cost_takes_the_action() -> None:
+    # min risk == d exactly: Chow accepts on equality (references.md, tie conventions); reject is last.
+    rule = tie_rule(["left", "right"], np.array([[0.0, 1.0], [1.0, 0.0]]), reject_cost=0.5)
+    half = np.array([[0.5, 0.5]])
+    assert rule.risks(half).tolist() == [[0.5, 0.5, 0.5]]
+    assert rule.decide_names(half).tolist() == ["left"]
+    below = tie_rule(["left", "right"], np.array([[0.0, 1.0], [1.0, 0.0]]), reject_cost=0.4999)
+    assert below.decide_names(half).tolist() == ["reject"]
