@@ -43,3 +43,18 @@ def test_ci_runs_the_readme_test_command() -> None:
     ci = (ROOT / ".ci" / "run").read_text(encoding="utf-8")
     assert "python -m pytest -q" in readme
     assert "\npython -m pytest -q\n" in ci
+
+
+def _promised_tests() -> list[str]:
+    readme = (ROOT / "README.md").read_text(encoding="utf-8")
+    section = readme.split("## What policyc promises under bad input", 1)[1].split("\n## ", 1)[0]
+    return re.findall(r"`(tests/[\w/]+\.py::test_\w+)`", section)
+
+
+def test_every_promise_under_bad_input_names_a_test_that_exists() -> None:
+    promised = _promised_tests()
+    assert len(promised) >= 5  # the section and its table are there
+    for reference in promised:
+        file, name = reference.split("::")
+        source = (ROOT / file).read_text(encoding="utf-8") if (ROOT / file).is_file() else ""
+        assert re.search(rf"^\s*def {name}\(", source, re.M), f"README promise names a missing test: {reference}"
