@@ -7,7 +7,7 @@ import sys
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, NoReturn
+from typing import TYPE_CHECKING, Any
 
 import click
 
@@ -15,12 +15,11 @@ from policyc import __version__
 from policyc.batch import decide_file
 from policyc.compiler import write_artefact, write_module
 from policyc.compiler.build import compile_policy
-from policyc.evidence.io import DataError
 from policyc.language.checks import CheckReport, action_regions, check_file
-from policyc.language.diagnostics import PolicyError, render_json, render_text
+from policyc.language.diagnostics import render_json, render_text
 from policyc.render import format_matrix
 from policyc.review.inspect import inspection, render_inspection
-from policyc.runtime import ArtefactError, InputError, Rule, load_rule
+from policyc.runtime import load_rule
 from policyc.schemas import policy_schema_text
 
 if TYPE_CHECKING:
@@ -36,8 +35,38 @@ CAUTION = (
 )
 
 
+EXIT_CODES = """\b
+Exit codes:
+  0  success (diff: every gate passes)
+  1  findings: check errors, warnings with --strict, a failed diff gate;
+     and for every command but diff, a policy, data, rule or input that cannot be used
+  2  usage errors; for diff, an input it cannot use ("trouble")"""
+
+_FORMAT_KEY = "policyc.format"
+_TROUBLE_KEY = "policyc.trouble_exit_code"
+DIFF_TROUBLE_EXIT_CODE = 2
+"""diff's exit code for an input it cannot use, so CI tells "the change is too big" (1) from "the job is broken"."""
+
+
+class _Commands(click.Group):
+    """The command group that turns every policyc error into its message and exit code, in this one place."""
+
+    def invoke(self, ctx: click.Context) -> Any:
+        from policyc.errors import PolicycError
+
+        try:
+            return super().invoke(ctx)
+        except PolicycError as error:
+            if ctx.meta.get(_FORMAT_KEY) == "json":
+                click.echo(json.dumps(error.as_json(), indent=2), err=True)
+            else:
+                click.echo(error.as_text(), err=True)
+            ctx.exit(ctx.meta.get(_TROUBLE_KEY, error.exit_code))
+
+
 @click.group(
-    help=f"Compile reviewed Bayes decision policies into frozen rules.\n\n{CAUTION}",
+    cls=_Commands,
+    help=f"Compile reviewed Bayes decision policies into frozen rules.\n\n{CAUTION}\n\n{EXIT_CODES}",
     context_settings={"help_option_names": ["-h", "--help"]},
 )
 @click.version_option(__version__, prog_name="policyc")
@@ -45,9 +74,10 @@ def main() -> None:
     pass
 
 
-def _fail(error: PolicyError) -> NoReturn:
-    click.echo(render_text(error.diagnostics), err=True)
-    sys.exit(1)
+def _remember_format(ctx: click.Context, param: click.Parameter, value: str) -> str:
+    """Errors are presented in the report's format: JSON on standard error when tools read the output."""
+    ctx.meta[_FORMAT_KEY] = value
+    return value
 
 
 FORMAT_OPTION = click.option(
@@ -56,6 +86,7 @@ FORMAT_OPTION = click.option(
     type=click.Choice(["text", "json"]),
     default="text",
     show_default=True,
+    callback=_remember_format,
     help="text: one line per diagnostic; json: a list of diagnostic objects.",
 )
 
@@ -74,7 +105,7 @@ FORMAT_OPTION = click.option(
 def check(policies: tuple[Path, ...], output_format: str, strict: bool, show: bool, show_source: bool | None) -> None:
     """Validate POLICY files and analyse their consistency.
 
-    Exit 0 when clean or warnings only, 1 on errors (with --strict, on warnings too).
+    Exit 0 when clean or warnings only, 1 on errors (with --strict, on warnings too), 2 on usage errors.
     """
     reports = [check_file(path) for path in policies]
     diagnostics = [d for report in reports for d in report.diagnostics]
@@ -188,11 +219,8 @@ def _progress(label: str) -> Iterator[_ProgressDisplay | None]:
 )
 def compile_command(policy: Path, rule_file: Path, module_file: Path | None) -> None:
     """Check POLICY, fit its evidence model and write the frozen rule."""
-    try:
-        with _progress("fitting") as progress:
-            compiled = compile_policy(policy, progress)
-    except PolicyError as error:
-        _fail(error)
+    with _progress("fitting") as progress:
+        compiled = compile_policy(policy, progress)
     if compiled.diagnostics:
         click.echo(render_text(compiled.diagnostics), err=True)
     digest = write_artefact(compiled.rule, rule_file)
@@ -200,13 +228,6 @@ def compile_command(policy: Path, rule_file: Path, module_file: Path | None) -> 
     if module_file is not None:
         write_module(compiled.rule, module_file)
         click.echo(f"standalone module -> {module_file}")
-
-
-def _load(rule_file: Path) -> Rule:
-    try:
-        return load_rule(rule_file)
-    except ArtefactError as error:
-        raise click.ClickException(str(error)) from None
 
 
 @main.command(epilog=CAUTION)
@@ -222,12 +243,9 @@ def _load(rule_file: Path) -> Rule:
 @click.option("--explain", is_flag=True, help="Also write posteriors, risks, runner-up action and margin.")
 def decide(rule_file: Path, data: Path, output: Path, explain: bool) -> None:
     """Decide every row of DATA (CSV or Parquet) with RULE_FILE; add an `action` column."""
-    rule = _load(rule_file)
-    try:
-        with _progress("deciding") as progress:
-            counts = decide_file(rule, data, output, explain, progress)
-    except (DataError, InputError) as error:
-        raise click.ClickException(str(error)) from None
+    rule = load_rule(rule_file)
+    with _progress("deciding") as progress:
+        counts = decide_file(rule, data, output, explain, progress)
     total = sum(counts.values())
     summary = ", ".join(f"{name} {n} ({n / total:.1%})" for name, n in counts.items())
     click.echo(f"{total} rows -> {output}: {summary}")
@@ -235,10 +253,17 @@ def decide(rule_file: Path, data: Path, output: Path, explain: bool) -> None:
 
 @main.command(epilog=CAUTION)
 @click.argument("rule_file", type=click.Path(dir_okay=False, path_type=Path))
-@click.option("--format", "output_format", type=click.Choice(["text", "json"]), default="text", show_default=True)
+@click.option(
+    "--format",
+    "output_format",
+    type=click.Choice(["text", "json"]),
+    default="text",
+    show_default=True,
+    callback=_remember_format,
+)
 def inspect(rule_file: Path, output_format: str) -> None:
     """Show a rule's manifest, hashes, names, priors, loss table and (two classes) posterior thresholds."""
-    rule = _load(rule_file)
+    rule = load_rule(rule_file)
     report = inspection(rule)
     if output_format == "json":
         click.echo(_json_dump(report))
@@ -259,6 +284,7 @@ REPORT_FORMAT_OPTION = click.option(
     type=click.Choice(["text", "markdown", "json"]),
     default="text",
     show_default=True,
+    callback=_remember_format,
     help="text for a terminal, markdown for a pull-request comment, json for tools (shape in the module docs).",
 )
 REPORT_OUTPUT_OPTION = click.option(
@@ -288,15 +314,10 @@ SEED_OPTION = click.option(
 
 
 def _load_subject(path: Path) -> LoadedRule:
-    """A policy file (checked and compiled in memory) or a rule file; exit 1 with diagnostics on errors."""
+    """A policy file (checked and compiled in memory) or a rule file; its warnings on standard error."""
     from policyc.review.shared.loading import load_rule_or_policy
 
-    try:
-        loaded = load_rule_or_policy(path)
-    except PolicyError as error:
-        _fail(error)
-    except ArtefactError as error:
-        raise click.ClickException(str(error)) from None
+    loaded = load_rule_or_policy(path)
     if loaded.diagnostics:
         click.echo(render_text(loaded.diagnostics), err=True)
     return loaded
@@ -377,12 +398,13 @@ def diff_command(
 
     Reports changed settings (with file:line:col when both are policies), where on the
     probability simplex the chosen action changes, and with --data the decisions that flip
-    and what that costs. Exit 0 when every gate passes, 1 when a gate fails or an input is
-    unusable, 2 on usage errors.
+    and what that costs. Exit 0 when every gate passes, 1 when a gate fails, 2 on usage errors
+    and on an input it cannot use (a missing file, a policy with errors, unusable data).
     """
     from policyc.review.diff import GateLimits, diff
     from policyc.review.diff.render import render_diff
 
+    click.get_current_context().meta[_TROUBLE_KEY] = DIFF_TROUBLE_EXIT_CODE
     limits = GateLimits(max_flip_rate, max_risk_increase, max_reject_rate, max_simplex_change)
     if label is not None and data is None:
         raise click.UsageError("--labels needs --data")
@@ -391,10 +413,7 @@ def diff_command(
     if max_risk_increase is not None and label is None:
         raise click.UsageError("--max-risk-increase needs --labels")
     before, after = _load_subject(old), _load_subject(new)
-    try:
-        report = diff(before, after, data, label, limits, simplex_samples, confidence, resamples, seed)
-    except (DataError, InputError) as error:
-        raise click.ClickException(str(error)) from None
+    report = diff(before, after, data, label, limits, simplex_samples, confidence, resamples, seed)
     _emit_report(render_diff(report, output_format), report_file)
     failed = [gate for gate in report.gates if not gate.passed]
     for gate in failed:
@@ -445,10 +464,7 @@ def evaluate(
     from policyc.review.evaluate.render import render_evaluation
 
     loaded = _load_subject(rule_file)
-    try:
-        result = run_evaluation(loaded, labelled_data, label, confidence, resamples, seed, curve_points)
-    except (DataError, InputError) as error:
-        raise click.ClickException(str(error)) from None
+    result = run_evaluation(loaded, labelled_data, label, confidence, resamples, seed, curve_points)
     _emit_report(render_evaluation(result, output_format), report_file)
     if plot_curve is not None:
         from policyc.review.plot import risk_reject_curve
@@ -457,14 +473,7 @@ def evaluate(
 
 
 def _draw(draw: Callable[[], Path]) -> None:
-    from policyc.review.plot import PlotError
-
-    try:
-        written = draw()
-    except PlotError as error:
-        raise click.ClickException(str(error)) from None
-    except (DataError, InputError) as error:
-        raise click.ClickException(str(error)) from None
+    written = draw()
     click.echo(f"picture -> {written}", err=True)
 
 
@@ -587,17 +596,21 @@ def plot_curve(rule_file: Path, data: Path, label: str, picture: Path, size: Fig
     from policyc.review.plot import risk_reject_curve
 
     loaded = _load_subject(rule_file)
-    try:
-        result = run_evaluation(loaded, data, label)
-    except (DataError, InputError) as error:
-        raise click.ClickException(str(error)) from None
+    result = run_evaluation(loaded, data, label)
     _draw(lambda: risk_reject_curve(result, picture, size))
 
 
 @main.command(epilog=CAUTION)
 @click.argument("rule_file", metavar="RULE", type=click.Path(dir_okay=False, path_type=Path))
 @click.argument("data", type=click.Path(dir_okay=False, path_type=Path))
-@click.option("--format", "output_format", type=click.Choice(["text", "json"]), default="text", show_default=True)
+@click.option(
+    "--format",
+    "output_format",
+    type=click.Choice(["text", "json"]),
+    default="text",
+    show_default=True,
+    callback=_remember_format,
+)
 @click.option(
     "--confidence",
     type=click.FloatRange(0.5, 1.0, max_open=True),
@@ -613,11 +626,8 @@ def priors(rule_file: Path, data: Path, output_format: str, confidence: float) -
     """
     from policyc.review.priors import estimate_priors
 
-    rule = _load(rule_file)
-    try:
-        estimate = estimate_priors(rule, data, confidence)
-    except (DataError, InputError) as error:
-        raise click.ClickException(str(error)) from None
+    rule = load_rule(rule_file)
+    estimate = estimate_priors(rule, data, confidence)
     if output_format == "json":
         click.echo(_json_dump(estimate.to_json()))
         return

@@ -20,7 +20,7 @@ ALLOWED: dict[str, set[str]] = {
     "geometry": set(),
     "files": set(),
     "render": set(),
-    "errors": set(),
+    "errors": {"runtime"},
     "language": {"files", "geometry", "errors"},
     "evidence": {"language", "files", "errors"},
     "compiler": {"language", "evidence", "runtime", "files", "render", "errors", "policyc"},

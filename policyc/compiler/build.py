@@ -10,9 +10,8 @@ import numpy as np
 
 from policyc import __version__
 from policyc.compiler.manifest import RuleManifest
+from policyc.errors import DataError, FitProblem
 from policyc.evidence import FittedEvidence, Progress, fit_evidence
-from policyc.evidence.gaussian import FitProblem
-from policyc.evidence.io import DataError
 from policyc.language.checks import load_checked_policy
 from policyc.language.diagnostics import CompileError, Diagnostic, Severity
 from policyc.language.model import Policy
@@ -39,10 +38,8 @@ def compile_policy(path: str | Path, progress: Progress | None = None) -> Compil
     try:
         fitted = fit_evidence(policy, document.base_dir, progress)
     except FitProblem as problem:
-        where = ("evidence", "training") if problem.code in {"unknown-label", "class-without-rows"} else ("evidence",)
-        raise CompileError(
-            [document.locate(Diagnostic(problem.code, Severity.ERROR, problem.message, where, hint=problem.hint))]
-        ) from None
+        diagnostic = Diagnostic(problem.code, Severity.ERROR, problem.message, problem.path, hint=problem.hint)
+        raise CompileError([document.locate(diagnostic)]) from None
     except DataError as error:
         raise CompileError(
             [

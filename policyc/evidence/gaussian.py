@@ -20,6 +20,7 @@ from pathlib import Path
 import numpy as np
 from scipy.linalg import solve_triangular
 
+from policyc.errors import FitProblem
 from policyc.evidence.base import FittedEvidence, Progress
 from policyc.evidence.io import count_rows, read_feature_batches
 from policyc.files import file_sha256
@@ -47,14 +48,6 @@ for 32 features than 65 536 rows (tests/benchmarks/bench_fit.py)."""
 CONDITION_LIMIT = 1e12
 """Largest accepted eigenvalue ratio of a covariance; beyond it float64 whitening loses most digits
 (common practice, no source)."""
-
-
-class FitProblem(ValueError):
-    """The data cannot support the requested model; ``code`` is a diagnostic code."""
-
-    def __init__(self, code: str, message: str, hint: str | None = None) -> None:
-        super().__init__(message)
-        self.code, self.message, self.hint = code, message, hint
 
 
 @dataclass(frozen=True)
@@ -220,7 +213,9 @@ def _require_rows(moments: Sequence[Moments], classes: Sequence[str], covariance
     n_features = moments[0].mean.shape[0]
     for name, m in zip(classes, moments, strict=True):
         if m.count == 0:
-            raise FitProblem("class-without-rows", f"class {name!r} has no training rows")
+            raise FitProblem(
+                "class-without-rows", f"class {name!r} has no training rows", path=("evidence", "training")
+            )
         needed = n_features + 1 if covariance == "full" and shrinkage == "none" else 2
         if m.count < needed:
             raise FitProblem(
@@ -305,6 +300,7 @@ def fit(
                     f"{path}: column {evidence.training.label!r}, row {unknown[0]}: "
                     f"label {unknown[1]!r} is not a class",
                     "fix the data, add the class, or set ignore_unknown_labels: true",
+                    ("evidence", "training"),
                 )
             if progress is not None:
                 progress(batch.features.shape[0], expected)

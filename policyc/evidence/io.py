@@ -23,6 +23,7 @@ import pyarrow.compute as pc
 import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 
+from policyc.errors import DataError
 from policyc.files import atomic_path
 
 __all__ = [
@@ -42,10 +43,6 @@ PARQUET_READ_BUFFER = 1 << 16
 """Bytes read at a time from each Parquet column chunk (pages are streamed, not whole row groups)."""
 _BLOCK_ROWS = 4096
 """Rows of the feature matrix filled at a time: the block stays in cache while each column is written."""
-
-
-class DataError(ValueError):
-    """A data file cannot be used as asked; the message names the file, column and row."""
 
 
 def data_format(path: Path) -> str:

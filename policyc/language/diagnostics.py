@@ -12,6 +12,8 @@ from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import asdict, dataclass, replace
 from enum import StrEnum
 
+from policyc.errors import PolicycError
+
 __all__ = [
     "CompileError",
     "Diagnostic",
@@ -107,13 +109,15 @@ def headline(diagnostics: Iterable[Diagnostic]) -> Diagnostic | None:
     return ranked[0] if ranked else None
 
 
-class PolicyError(Exception):
-    """Base of every error policyc reports about a policy, its data or a rule.
+class PolicyError(PolicycError):
+    """The language stage's error: a policy that cannot be used, with every located diagnostic.
 
-    Carries the full list of diagnostics; ``str()`` shows the first few.
+    Carries the full list of diagnostics; ``str()`` shows the first few, :meth:`as_text` all of them
+    with their hints, :meth:`as_json` all of them in their JSON form.
     """
 
     shown = 5
+    stage = "language"
 
     def __init__(self, diagnostics: Sequence[Diagnostic]) -> None:
         self.diagnostics = tuple(diagnostics)
@@ -130,6 +134,12 @@ class PolicyError(Exception):
     def codes(self) -> list[str]:
         return [d.code for d in self.diagnostics]
 
+    def as_text(self) -> str:
+        return render_text(self.diagnostics)
+
+    def as_json(self) -> dict[str, object]:
+        return {**super().as_json(), "diagnostics": [d.to_json() for d in self.diagnostics]}
+
 
 class PolicySourceError(PolicyError):
     """The YAML text cannot be read strictly."""
@@ -145,6 +155,8 @@ class PolicyCheckError(PolicyError):
 
 class CompileError(PolicyError):
     """Fitting or compiling the policy failed (data, covariance, ...)."""
+
+    stage = "compiler"
 
 
 def _location_prefix(diagnostic: Diagnostic) -> str:

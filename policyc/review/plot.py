@@ -17,6 +17,7 @@ from typing import Any, Protocol
 
 import numpy as np
 
+from policyc.errors import ReviewError
 from policyc.evidence.io import read_feature_batches
 from policyc.files import atomic_path
 from policyc.geometry.decisions import align_columns, decide_on_posteriors, matching_actions
@@ -79,7 +80,7 @@ class CurveReport(Protocol):
     def reach_value(self) -> float: ...
 
 
-class PlotError(ValueError):
+class PlotError(ReviewError):
     """A picture cannot be drawn as asked (missing matplotlib, wrong rule kind, unknown feature...)."""
 
 

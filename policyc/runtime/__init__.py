@@ -6,8 +6,17 @@
 
 from __future__ import annotations
 
-from .artefact import FORMAT_NAME, FORMAT_VERSION, ArtefactError
-from .kernel import InputError
+from .artefact import FORMAT_NAME, FORMAT_VERSION
+from .errors import ArtefactError, InputError, PolicycError
 from .rule import Explanation, Rule, load_rule
 
-__all__ = ["FORMAT_NAME", "FORMAT_VERSION", "ArtefactError", "Explanation", "InputError", "Rule", "load_rule"]
+__all__ = [
+    "FORMAT_NAME",
+    "FORMAT_VERSION",
+    "ArtefactError",
+    "Explanation",
+    "InputError",
+    "PolicycError",
+    "Rule",
+    "load_rule",
+]

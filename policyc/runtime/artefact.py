@@ -23,6 +23,8 @@ from typing import Any, Final
 
 import numpy as np
 
+from .errors import ArtefactError
+
 __all__ = [
     "FORMAT_NAME",
     "FORMAT_VERSION",
@@ -40,10 +42,6 @@ _MANIFEST = "manifest.json"
 _ARRAY_DIR = "arrays/"
 _FIXED_TIME = (1980, 1, 1, 0, 0, 0)
 _MAX_MEMBER_BYTES = 1 << 30
-
-
-class ArtefactError(ValueError):
-    """A rule file is corrupt, tampered with, or of a format this runtime cannot read."""
 
 
 def _canonical(manifest: dict[str, Any]) -> bytes:

@@ -3,7 +3,8 @@
 from __future__ import annotations
 
 import os
-from collections.abc import Mapping
+from collections.abc import Iterator, Mapping
+from contextlib import contextmanager
 from dataclasses import dataclass
 from types import MappingProxyType
 from typing import Any
@@ -11,7 +12,8 @@ from typing import Any
 import numpy as np
 
 from . import kernel
-from .artefact import ArtefactError, decode_rule
+from .artefact import decode_rule
+from .errors import ArtefactError, InputError
 
 __all__ = ["Explanation", "Rule", "load_rule"]
 
@@ -95,7 +97,8 @@ class Rule:
         return self.manifest.get("content_sha256")
 
     def _evaluate(self, X: object) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        return kernel.evaluate(X, self.evidence, self._params, len(self.features), self.invalid_input)
+        with _input_refusals():
+            return kernel.evaluate(X, self.evidence, self._params, len(self.features), self.invalid_input)
 
     def posteriors(self, X: object) -> np.ndarray:
         """P(class | x), shape (n, K), columns in ``classes`` order; NaN rows are invalid input."""
@@ -125,12 +128,12 @@ class Rule:
                 f"missing feature(s) {missing}" if missing else "",
                 f"unknown field(s) {unknown}" if unknown else "",
             ]
-            raise kernel.InputError("; ".join(p for p in parts if p))
+            raise InputError("; ".join(p for p in parts if p))
         values = []
         for name in self.features:
             value = record[name]
             if isinstance(value, bool) or not isinstance(value, int | float | np.integer | np.floating):
-                raise kernel.InputError(f"feature {name!r} must be a number, got {value!r}")
+                raise InputError(f"feature {name!r} must be a number, got {value!r}")
             values.append(float(value))
         return np.array(values, dtype=np.float64)
 
@@ -138,13 +141,14 @@ class Rule:
         """Posteriors, risks, chosen action, runner-up and margin per row (invalid rows per invalid_input)."""
         explanation = self.assess(X)
         if self.invalid_input == "error" and not explanation.valid.all():
-            raise kernel.InputError(kernel.invalid_rows_message(explanation.valid))
+            raise InputError(kernel.invalid_rows_message(explanation.valid))
         return explanation
 
     def assess(self, X: object) -> Explanation:
         """Like :meth:`explain`, but invalid rows never raise: they are marked in ``valid`` and sent to reject
         when the policy has a reject option (index ``len(actions) - 1`` otherwise, with NaN risks)."""
-        prepared = kernel.prepare_input(X, len(self.features))
+        with _input_refusals():
+            prepared = kernel.prepare_input(X, len(self.features))
         posteriors, risks, valid = kernel.posteriors_and_risks(prepared, self.evidence, self._params)
         action = kernel.choose(risks, valid, len(self.actions) - 1)
         n_rows = risks.shape[0]
@@ -157,6 +161,17 @@ class Rule:
             runner_up = np.where(valid, second, -1)
             margin = np.where(valid, others[np.arange(n_rows), second] - risks[np.arange(n_rows), action], np.nan)
         return Explanation(posteriors, risks, action, runner_up, margin, valid)
+
+
+@contextmanager
+def _input_refusals() -> Iterator[None]:
+    """The kernel's InputError (numpy-only code, shared with the standalone module) as the runtime's own."""
+    try:
+        yield
+    except kernel.InputError as exc:
+        if isinstance(exc, InputError):
+            raise
+        raise InputError(str(exc)) from None
 
 
 def load_rule(path: str | os.PathLike[str]) -> Rule:

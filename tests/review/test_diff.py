@@ -376,11 +376,33 @@ def test_usage_errors_exit_2(extra: list[str]) -> None:
     assert code == 2
 
 
-def test_a_policy_with_errors_exits_1_with_its_diagnostics(tmp_path: Path) -> None:
+def test_a_policy_with_errors_is_trouble_exit_2_with_its_diagnostics(tmp_path: Path) -> None:
     broken = tmp_path / "broken.yaml"
     broken.write_text(binary_policy(0, 1, 1, 0).replace("pos: 0.5}", "pos: 0.7}", 1), encoding="utf-8")
     code, _, err = run("diff", broken, PACKHOUSE / "policy.yaml")
-    assert code == 1 and "priors-do-not-sum-to-one" in err and f"{broken}:4:" in err  # line 4 holds the priors
+    assert code == 2 and "priors-do-not-sum-to-one" in err and f"{broken}:4:" in err  # line 4 holds the priors
+
+
+@pytest.mark.parametrize("trouble", ["missing-rule", "missing-data", "bad-label-column"])
+def test_an_input_diff_cannot_use_exits_2_never_1(tmp_path: Path, trouble: str) -> None:
+    # 1 means "a gate failed"; CI must be able to tell a broken job from a change that is too big
+    policy = PACKHOUSE / "policy.yaml"
+    reference = PACKHOUSE / "incoming.csv"
+    args = {
+        "missing-rule": [tmp_path / "absent.rule", policy],
+        "missing-data": [policy, policy, "--data", tmp_path / "absent.csv"],
+        "bad-label-column": [policy, policy, "--data", reference, "--labels", "no_such_column"],
+    }[trouble]
+    code, out, err = run("diff", *args, "--max-flip-rate", "0") if trouble != "missing-rule" else run("diff", *args)
+    assert code == 2 and out == "" and "Traceback" not in err and err.startswith("error: ")
+
+
+def test_trouble_in_json_format_is_a_json_error_object(tmp_path: Path) -> None:
+    policy = PACKHOUSE / "policy.yaml"
+    code, out, err = run("diff", policy, policy, "--data", tmp_path / "absent.csv", "--format", "json")
+    error = json.loads(err)
+    assert code == 2 and out == ""
+    assert error["error"] == "DataError" and error["stage"] == "evidence" and "absent.csv" in error["message"]
 
 
 # --- snapshots of the rendered reports ---------------------------------------------------------
