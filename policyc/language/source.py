@@ -12,12 +12,20 @@ ours and stated here (YAML 1.2 core schema, with the YAML 1.1 pitfalls refused):
 * sequences become tuples, so the loaded data is immutable in spirit;
 * duplicate keys, anchors, aliases, explicit tags, several documents, a
   non-mapping root and files over :data:`MAX_POLICY_BYTES` are errors.
+
+Hostile input meets limits before it costs anything: a file is read only if it is
+a regular file, and never more than :data:`MAX_POLICY_BYTES` + 1 bytes of it
+(``stat`` sizes lie for devices and ``/proc``); control characters, integers
+beyond ±2**53, nesting deeper than :data:`MAX_NESTING` and more than
+:data:`MAX_NODES` keys, values and items are located errors.
 """
 
 from __future__ import annotations
 
 import hashlib
+import os
 import re
+import stat
 from dataclasses import dataclass, field
 from pathlib import Path as FilePath
 from typing import Any
@@ -28,9 +36,24 @@ from yaml.nodes import MappingNode, Node, ScalarNode, SequenceNode
 
 from policyc.language.diagnostics import Diagnostic, Path, PolicySourceError, Position, Severity
 
-__all__ = ["MAX_POLICY_BYTES", "SourceDocument", "load_source", "parse_source"]
+__all__ = [
+    "MAX_INTEGER",
+    "MAX_NESTING",
+    "MAX_NODES",
+    "MAX_POLICY_BYTES",
+    "SourceDocument",
+    "load_source",
+    "parse_source",
+]
 
 MAX_POLICY_BYTES = 1 << 20  # a policy is a reviewed text file, never megabytes
+MAX_NESTING = 32  # a policy nests four or five levels; the limit keeps composing far from Python's recursion limit
+MAX_NODES = 20_000  # keys, values and list items: a 100-class, 100-action loss matrix fits; parsing stays under ~1 s
+MAX_INTEGER = 1 << 53  # every integer up to 2**53 is exact as a float, so a number never changes silently
+
+# What YAML allows in a stream (YAML 1.1 §5.1, as PyYAML's reader checks it); anything else is refused by us,
+# with a position, before the parser sees it.
+_NOT_PRINTABLE = re.compile("[^\x09\x0a\x0d\x20-\x7e\x85\xa0-\ud7ff\ue000-\ufffd\U00010000-\U0010ffff]")
 
 _NULL = re.compile(r"^(?:~|null|Null|NULL|)$")
 _BOOL = re.compile(r"^(?:true|True|TRUE|false|False|FALSE)$")
@@ -75,10 +98,40 @@ class SourceDocument:
 
 
 class _StrictLoader(yaml.SafeLoader):  # type: ignore[misc]  # PyYAML ships no types
-    """Refuses anchors, aliases and explicit tags while composing."""
+    """Refuses anchors, aliases, explicit tags, deep nesting and too many nodes while composing."""
+
+    def __init__(self, stream: str) -> None:
+        super().__init__(stream)
+        self._depth = 0
+        self._nodes = 0
 
     def compose_node(self, parent: Node | None, index: Any) -> Node | None:
         event = self.peek_event()
+        self._count(event)
+        self._depth += 1
+        try:
+            return self._compose_checked(parent, index, event)
+        finally:
+            self._depth -= 1
+
+    def _count(self, event: Any) -> None:
+        self._nodes += 1
+        if self._nodes > MAX_NODES:
+            raise _Refusal(
+                "too-many-nodes",
+                f"the policy has more than {MAX_NODES} keys, values and list items",
+                event.start_mark,
+                "a policy is a short reviewed text; split it, or check that it is the file you meant",
+            )
+        if self._depth >= MAX_NESTING:
+            raise _Refusal(
+                "nesting-too-deep",
+                f"the policy nests deeper than {MAX_NESTING} levels",
+                event.start_mark,
+                "a policy nests a few levels (loss: action: class: value); check the brackets",
+            )
+
+    def _compose_checked(self, parent: Node | None, index: Any, event: Any) -> Node | None:
         if isinstance(event, AliasEvent):
             raise _Refusal("yaml-alias", "aliases (*name) are not allowed in a policy", event.start_mark)
         if isinstance(event, ScalarEvent | CollectionStartEvent):
@@ -99,18 +152,9 @@ def load_source(path: str | FilePath) -> SourceDocument:
     """Read and strictly parse a policy file."""
     file = FilePath(path)
     name = str(path)
-    try:
-        size = file.stat().st_size
-        if size > MAX_POLICY_BYTES:
-            raise _source_error(
-                name,
-                "policy-too-large",
-                f"the file is {size} bytes; a policy may have at most {MAX_POLICY_BYTES} bytes",
-                None,
-            )
-        raw = file.read_bytes()
-    except OSError as exc:
-        raise _source_error(name, "policy-unreadable", f"cannot read the file: {exc.strerror}", None) from exc
+    raw = _read_capped(file, name)
+    if len(raw) > MAX_POLICY_BYTES:
+        raise _too_large(name, raw)
     try:
         text = raw.decode("utf-8")
     except UnicodeDecodeError as exc:
@@ -119,10 +163,67 @@ def load_source(path: str | FilePath) -> SourceDocument:
     return parse_source(text, name, base_dir=file.resolve().parent)
 
 
+def _read_capped(file: FilePath, name: str) -> bytes:
+    """At most MAX_POLICY_BYTES + 1 bytes of a regular file; anything else is refused before it is read.
+
+    Opening without blocking keeps a FIFO with no writer from hanging us; reading in bounded chunks
+    keeps a device (/dev/zero) or a file that grows from filling memory whatever ``stat`` says.
+    """
+    try:
+        descriptor = os.open(file, os.O_RDONLY | getattr(os, "O_NONBLOCK", 0) | getattr(os, "O_CLOEXEC", 0))
+    except OSError as exc:
+        raise _source_error(name, "policy-unreadable", f"cannot read the file: {exc.strerror}", None) from None
+    try:
+        mode = os.fstat(descriptor).st_mode
+        if not stat.S_ISREG(mode):
+            raise _source_error(
+                name,
+                "policy-not-a-file",
+                f"this is {_file_kind(mode)}, not a regular file; a policy is read from a file",
+                None,
+            )
+        chunks: list[bytes] = []
+        size = 0
+        while size <= MAX_POLICY_BYTES:
+            chunk = os.read(descriptor, MAX_POLICY_BYTES + 1 - size)
+            if not chunk:
+                break
+            chunks.append(chunk)
+            size += len(chunk)
+        return b"".join(chunks)
+    except OSError as exc:
+        raise _source_error(name, "policy-unreadable", f"cannot read the file: {exc.strerror}", None) from None
+    finally:
+        os.close(descriptor)
+
+
+def _file_kind(mode: int) -> str:
+    kinds = [
+        (stat.S_ISDIR, "a directory"),
+        (stat.S_ISFIFO, "a FIFO (named pipe)"),
+        (stat.S_ISCHR, "a character device"),
+        (stat.S_ISBLK, "a block device"),
+        (stat.S_ISSOCK, "a socket"),
+    ]
+    return next((kind for test, kind in kinds if test(mode)), "not a regular file")
+
+
+def _too_large(name: str, raw: bytes) -> PolicySourceError:
+    """The refusal of an oversized policy, located at the first byte beyond the cap."""
+    head = raw[:MAX_POLICY_BYTES]
+    line_start = head.rfind(b"\n") + 1
+    position = Position(head.count(b"\n") + 1, len(head) - line_start + 1)
+    return _source_error(
+        name, "policy-too-large", f"a policy may have at most {MAX_POLICY_BYTES} bytes; this one has more", position
+    )
+
+
 def parse_source(text: str, name: str = "<policy>", base_dir: FilePath | None = None) -> SourceDocument:
     """Strictly parse policy text; raise :class:`PolicySourceError` with a location on any refusal."""
-    if len(text.encode("utf-8")) > MAX_POLICY_BYTES:
-        raise _source_error(name, "policy-too-large", f"a policy may have at most {MAX_POLICY_BYTES} bytes", None)
+    encoded = text.encode("utf-8", errors="surrogatepass")
+    if len(encoded) > MAX_POLICY_BYTES:
+        raise _too_large(name, encoded)
+    _refuse_control_characters(text, name)
     try:
         root = yaml.compose(text, Loader=_StrictLoader)
     except _Refusal as refusal:
@@ -130,7 +231,7 @@ def parse_source(text: str, name: str = "<policy>", base_dir: FilePath | None = 
     except yaml.MarkedYAMLError as exc:
         mark = exc.problem_mark or exc.context_mark
         message = " ".join(p for p in (exc.context, exc.problem) if p) or "invalid YAML"
-        raise _source_error(name, "yaml-syntax", message, _position(mark)) from None
+        raise _source_error(name, "yaml-syntax", message, _position(mark) if mark else None) from None
     if root is None or (isinstance(root, ScalarNode) and root.value == "" and root.style is None):
         raise _source_error(name, "policy-empty", "the file holds no policy", Position(1, 1))
     if not isinstance(root, MappingNode):
@@ -197,10 +298,46 @@ def _scalar(node: ScalarNode) -> Any:
     if _BOOL.match(text):
         return text.lower() == "true"
     if _INT.match(text):
-        return int(text, 0) if text.startswith(("0o", "0x")) else int(text)
+        return _integer(text, node)
     if _FLOAT.match(text):
         return float(text.lower().replace(".inf", "inf").replace(".nan", "nan"))
     return text
+
+
+def _integer(text: str, node: ScalarNode) -> int:
+    """The integer a plain scalar spells, refused beyond ±MAX_INTEGER (checked on the digits before converting)."""
+    digits = text.lstrip("+-")
+    value = None
+    if len(digits) <= 24:  # any longer is too large in every base; int() would also refuse 4,300 decimal digits
+        value = int(text, 0) if digits.startswith(("0o", "0x")) else int(text)
+    if value is None or abs(value) > MAX_INTEGER:
+        raise _Refusal(
+            "number-too-large",
+            f"the integer {_abbreviated(text)} lies beyond ±2**53, where integers stop being exact as numbers",
+            node.start_mark,
+            "write it as a decimal number with an exponent (1e20) if you mean it, or quote it if it is a name",
+        )
+    return value
+
+
+def _abbreviated(text: str) -> str:
+    return text if len(text) <= 24 else f"{text[:10]}...{text[-6:]} ({len(text)} characters)"
+
+
+def _refuse_control_characters(text: str, name: str) -> None:
+    """Refuse characters that YAML forbids (control characters, surrogates) at their line and column."""
+    found = _NOT_PRINTABLE.search(text)
+    if found is None:
+        return
+    line = text.count("\n", 0, found.start()) + 1
+    column = found.start() - (text.rfind("\n", 0, found.start()) + 1) + 1
+    raise _source_error(
+        name,
+        "control-character",
+        f"the character U+{ord(found.group()):04X} is not allowed in a policy",
+        Position(line, column),
+        "delete it: control characters are invisible in review; write tabs and line breaks as themselves",
+    )
 
 
 def _position(mark: Any) -> Position:

@@ -3,12 +3,22 @@
 from __future__ import annotations
 
 import math
+import os
+import threading
 from pathlib import Path
 
 import pytest
 
 from policyc.language.diagnostics import Diagnostic, PolicySourceError, Position, Severity
-from policyc.language.source import MAX_POLICY_BYTES, SourceDocument, load_source, parse_source
+from policyc.language.source import (
+    MAX_INTEGER,
+    MAX_NESTING,
+    MAX_NODES,
+    MAX_POLICY_BYTES,
+    SourceDocument,
+    load_source,
+    parse_source,
+)
 
 
 def refusal(text: str, name: str = "p.yaml") -> Diagnostic:
@@ -96,11 +106,67 @@ def test_complex_key_is_refused() -> None:
     assert refusal("? [a, b]\n: 1\n").code == "yaml-complex-key"
 
 
-def test_text_over_the_size_limit_is_refused() -> None:
+def test_nesting_beyond_the_limit_is_refused_where_it_starts() -> None:
+    # ~1,000 levels of brackets ended in RecursionError.
+    text = "policy: " + "[" * 3000 + "]" * 3000 + "\n"
+    # the root mapping is level 1 and the first bracket level 2, so bracket number MAX_NESTING is one too deep
+    assert where(refusal(text)) == ("nesting-too-deep", 1, 9 + MAX_NESTING - 1)
+
+
+def test_nesting_at_the_limit_is_read() -> None:
+    levels = MAX_NESTING - 2  # the root mapping and the innermost scalar are levels too
+    document = parse_source("policy: " + "[" * levels + "1" + "]" * levels + "\n")
+    value = document.data["policy"]
+    for _ in range(levels):
+        (value,) = value
+    assert value == 1
+
+
+def test_too_many_nodes_are_refused_at_the_first_beyond_the_limit() -> None:
+    text = "policy: p\nitems: [" + ", ".join(["1"] * MAX_NODES) + "]\n"
+    # nodes so far: the root, two keys, 'p', the list; so the list item number MAX_NODES - 4 is one too many
+    assert where(refusal(text)) == ("too-many-nodes", 2, 9 + 3 * (MAX_NODES - 5))
+
+
+def test_fifty_thousand_keys_are_refused_quickly() -> None:
+    # 50,000 keys took 6.5 s to parse and check; the node limit stops it after MAX_NODES nodes.
+    text = "policy: p\nextra:\n" + "".join(f"  k{i}: {i}\n" for i in range(50_000))
+    assert refusal(text).code == "too-many-nodes"
+
+
+@pytest.mark.parametrize("character", ["\x00", "\x01", "\x08", "\x1b", "\x7f", "\x9b", "\ufffe", "\ud800"])
+def test_control_characters_are_refused_where_they_stand(character: str) -> None:
+    # These ended in PyYAML's unlocated ReaderError.
+    diagnostic = refusal(f"policy: p\ndescription: a{character}b\n")
+    assert where(diagnostic) == ("control-character", 2, 15)
+    assert f"U+{ord(character):04X}" in diagnostic.message
+
+
+def test_tabs_line_breaks_and_printable_unicode_are_text() -> None:
+    document = parse_source('policy: p\r\ndescription: "caf\u00e9\\t\u4e2d \U0001f34e"\n')
+    assert document.data["description"] == "caf\u00e9\t\u4e2d \U0001f34e"
+
+
+@pytest.mark.parametrize(
+    ("scalar", "col"),
+    [("9" * 5000, 11), (str(MAX_INTEGER + 1), 11), ("-" + str(MAX_INTEGER + 1), 11), ("0x" + "f" * 14, 11)],
+)
+def test_integers_beyond_two_to_the_53_are_refused(scalar: str, col: int) -> None:
+    # A 5,000-digit integer ended in Python's ValueError on converting it.
+    diagnostic = refusal(f"policy: p\nrevision: {scalar}\n")
+    assert where(diagnostic) == ("number-too-large", 2, col)
+    assert len(diagnostic.message) < 200
+
+
+@pytest.mark.parametrize("scalar", [str(MAX_INTEGER), "-" + str(MAX_INTEGER), "0x" + "f" * 13, "1" + "0" * 400 + ".0"])
+def test_integers_up_to_two_to_the_53_and_long_floats_are_numbers(scalar: str) -> None:
+    value = parse_source(f"policy: p\nrevision: {scalar}\n").data["revision"]
+    assert value == (int(scalar, 0) if "." not in scalar else math.inf)
+
+
+def test_text_over_the_size_limit_is_refused_at_the_first_byte_beyond() -> None:
     text = "# " + "x" * MAX_POLICY_BYTES + "\npolicy: p\n"
-    diagnostic = refusal(text)
-    assert diagnostic.code == "policy-too-large"
-    assert diagnostic.line is None
+    assert where(refusal(text)) == ("policy-too-large", 1, MAX_POLICY_BYTES + 1)
 
 
 def test_file_over_the_size_limit_is_refused(tmp_path: Path) -> None:
@@ -110,6 +176,41 @@ def test_file_over_the_size_limit_is_refused(tmp_path: Path) -> None:
         load_source(path)
     assert info.value.codes == ["policy-too-large"]
     assert str(MAX_POLICY_BYTES) in info.value.diagnostics[0].message
+
+
+def test_endless_device_is_refused_without_reading_it() -> None:
+    # /dev/zero reports size 0 and never ends: trusting stat read it until memory ran out.
+    with pytest.raises(PolicySourceError) as info:
+        load_source("/dev/zero")
+    assert info.value.codes == ["policy-not-a-file"]
+    assert "character device" in info.value.diagnostics[0].message
+
+
+def test_directory_is_not_a_policy_file(tmp_path: Path) -> None:
+    with pytest.raises(PolicySourceError) as info:
+        load_source(tmp_path)
+    assert info.value.codes == ["policy-not-a-file"]
+
+
+@pytest.mark.skipif(not hasattr(os, "mkfifo"), reason="named pipes are a POSIX feature")
+def test_fifo_is_refused_without_waiting_for_a_writer(tmp_path: Path) -> None:
+    fifo = tmp_path / "policy.yaml"
+    os.mkfifo(fifo)
+    outcome: list[object] = []
+
+    def load() -> None:
+        try:
+            load_source(fifo)
+        except PolicySourceError as exc:
+            outcome.append(exc.codes)
+
+    reader = threading.Thread(target=load, daemon=True)
+    reader.start()
+    reader.join(timeout=10.0)
+    if reader.is_alive():  # release the blocked reader so the test run can end
+        os.close(os.open(fifo, os.O_WRONLY | os.O_NONBLOCK))
+        pytest.fail("load_source waited on a FIFO instead of refusing it")
+    assert outcome == [["policy-not-a-file"]]
 
 
 def test_file_at_the_size_limit_is_read(tmp_path: Path) -> None:
