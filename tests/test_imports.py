@@ -8,6 +8,7 @@ import subprocess
 import sys
 from pathlib import Path
 
+import pytest
 from helpers import DEMOS, PACKHOUSE, ROOT, read_csv_columns
 
 from policyc.compiler import write_artefact
@@ -22,6 +23,8 @@ FORBIDDEN = {
     "scipy",
     "jsonschema",
     "pyarrow",
+    "pandas",
+    "polars",
     "sklearn",
     "policyc.language.checks",
     "policyc.compiler.build",
@@ -94,10 +97,11 @@ def test_runtime_sources_import_only_numpy_stdlib_and_runtime() -> None:
     assert offending == []
 
 
-def test_kernel_imports_numpy_only() -> None:
-    # The standalone module copies kernel.py verbatim, so it may not even import the rest of the runtime.
-    modules = {module for module, _ in imports_of(RUNTIME / "kernel.py")}
-    assert modules <= {"__future__", "numpy"}
+@pytest.mark.parametrize("copied", ["inputs.py", "kernel.py"])
+def test_files_copied_into_the_module_import_numpy_and_each_other_only(copied: str) -> None:
+    # The standalone module copies inputs.py and kernel.py verbatim: no other part of the runtime is there.
+    modules = {module for module, _ in imports_of(RUNTIME / copied)}
+    assert modules <= {"__future__", "typing", "numpy", "policyc.runtime.inputs"}
 
 
 def test_top_level_package_is_light() -> None:

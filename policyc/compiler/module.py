@@ -1,7 +1,8 @@
 """Generate a standalone Python module (numpy only) that decides exactly as the runtime does.
 
-The module's kernel is the text of :mod:`policyc.runtime.kernel`, copied verbatim
-(minus its docstring and imports), so there is one implementation of the math.
+The module's input reader and kernel are the text of :mod:`policyc.runtime.inputs` and
+:mod:`policyc.runtime.kernel`, copied verbatim (minus their docstrings and imports), so there is
+one implementation of the input handling and the math.
 Parameters are written as Python float literals via ``repr``, which round-trips
 every float64 exactly.
 """
@@ -18,11 +19,15 @@ import numpy as np
 
 from policyc.files import write_bytes_atomically
 from policyc.render import format_matrix
-from policyc.runtime import Rule, kernel
+from policyc.runtime import Rule, inputs, kernel
 
 __all__ = ["module_source", "write_module"]
 
 _WIDTH = 110
+
+_COPIED = (inputs, kernel)
+"""Runtime files whose text the module holds, in dependency order; they import numpy, the standard library
+and each other only."""
 
 
 def _float_literal(value: float) -> str:
@@ -49,13 +54,29 @@ def _array_literal(name: str, array: np.ndarray) -> str:
     return f"    {json.dumps(name)}: np.array(\n        [\n{textwrap.indent(inner, '    ')}\n        ]\n    ),"
 
 
-def _kernel_body() -> str:
-    """The runtime kernel's source without its module docstring and import lines."""
-    source = Path(kernel.__file__).read_text(encoding="utf-8")
-    tree = ast.parse(source)
-    lines = source.splitlines()
-    first_code = next(node.lineno for node in tree.body[1:] if not isinstance(node, ast.Import | ast.ImportFrom))
-    return "\n".join(lines[first_code - 1 :]).rstrip() + "\n"
+def _copied_code() -> tuple[list[str], str]:
+    """The import lines (other than between the copied files) and the bodies of the copied runtime files."""
+    imports: list[str] = []
+    bodies = []
+    for module in _COPIED:
+        source = Path(str(module.__file__)).read_text(encoding="utf-8")
+        lines = source.splitlines()
+        statements = ast.parse(source).body[1:]  # after the module docstring
+        first_code = next(i for i, node in enumerate(statements) if not isinstance(node, ast.Import | ast.ImportFrom))
+        for node in statements[:first_code]:
+            line = "\n".join(lines[node.lineno - 1 : node.end_lineno])
+            relative = isinstance(node, ast.ImportFrom) and node.level > 0
+            imports += [] if relative or line in imports else [line]
+        bodies.append("\n".join(lines[statements[first_code].lineno - 1 :]).rstrip() + "\n")
+    return imports, "\n\n".join(bodies)
+
+
+def _import_block(imports: list[str]) -> str:
+    """Import lines grouped as isort does: ``__future__``, the standard library, then numpy."""
+    groups: dict[int, list[str]] = {}
+    for line in imports:
+        groups.setdefault(0 if "__future__" in line else 2 if "numpy" in line else 1, []).append(line)
+    return "\n\n".join("\n".join(sorted(groups[key])) for key in sorted(groups))
 
 
 def _header(rule: Rule) -> str:
@@ -77,7 +98,8 @@ Deployment priors:
 Loss{unit}, loss[action][true class]; the reject action, if any, is the last row:
 {textwrap.indent(loss, "    ")}
 
-Use: decide(X) with X of shape (n, len(FEATURES)) in FEATURES order gives indices into ACTIONS.
+Use: decide(X) gives indices into ACTIONS; X is an array of shape (n, len(FEATURES)) in FEATURES
+order, or a table (DataFrame, pyarrow Table, mapping of name to column) read by column name.
 Caution: the rule is only as good as its evidence model, priors and losses; validate it on
 held-out data and defer to local regulations and qualified review.
 """
@@ -88,10 +110,9 @@ def module_source(rule: Rule) -> str:
     """The text of the standalone module for ``rule``."""
     manifest = rule.manifest
     params = "\n".join(_array_literal(name, rule.params[name]) for name in sorted(rule.params))
+    imports, copied = _copied_code()
     constants = f"""
-from __future__ import annotations
-
-import numpy as np
+{_import_block(imports)}
 
 POLICY = {json.dumps(manifest["policy"])}
 REVISION = {int(manifest["revision"])}
@@ -107,7 +128,7 @@ PARAMS = {{
 {params}
 }}
 
-# --- kernel: the text of policyc/runtime/kernel.py ---
+# --- input reader and kernel: the text of policyc/runtime/inputs.py and policyc/runtime/kernel.py ---
 
 """
     api = '''
@@ -116,21 +137,25 @@ PARAMS = {{
 
 
 def posteriors(X: object) -> np.ndarray:
-    """P(class | x), shape (n, len(CLASSES)); NaN rows are invalid input."""
-    return evaluate(X, EVIDENCE, PARAMS, len(FEATURES), INVALID_INPUT)[0]
+    """P(class | x), shape (n, len(CLASSES)); NaN rows are invalid input.
+
+    X: a 2-D array with columns in FEATURES order, or a table with named columns (pandas or polars
+    DataFrame, pyarrow Table or RecordBatch, mapping of column name to 1-D array), read by name.
+    """
+    return evaluate(X, EVIDENCE, PARAMS, FEATURES, INVALID_INPUT)[0]
 
 
 def risks(X: object) -> np.ndarray:
-    """Conditional risks R(a | x), shape (n, len(ACTIONS)), reject last."""
-    return evaluate(X, EVIDENCE, PARAMS, len(FEATURES), INVALID_INPUT)[1]
+    """Conditional risks R(a | x), shape (n, len(ACTIONS)), reject last; X as for posteriors."""
+    return evaluate(X, EVIDENCE, PARAMS, FEATURES, INVALID_INPUT)[1]
 
 
 def decide(X: object) -> np.ndarray:
-    """Index into ACTIONS of the minimum-risk action per row."""
-    _, conditional_risks, valid = evaluate(X, EVIDENCE, PARAMS, len(FEATURES), INVALID_INPUT)
+    """Index into ACTIONS of the minimum-risk action per row; X as for posteriors."""
+    _, conditional_risks, valid = evaluate(X, EVIDENCE, PARAMS, FEATURES, INVALID_INPUT)
     return choose(conditional_risks, valid, len(ACTIONS) - 1)
 '''
-    return _header(rule) + constants + _kernel_body() + api
+    return _header(rule) + constants + copied + api
 
 
 def _tuple_literal(names: tuple[str, ...]) -> str:

@@ -10,7 +10,7 @@ from __future__ import annotations
 
 from typing import ClassVar
 
-from .kernel import InputError as KernelInputError
+from .inputs import InputError as ReaderInputError
 
 __all__ = ["ArtefactError", "InputError", "PolicycError"]
 
@@ -44,11 +44,11 @@ class ArtefactError(PolicycError, ValueError):
     stage = "runtime"
 
 
-class InputError(PolicycError, KernelInputError):
+class InputError(PolicycError, ReaderInputError):
     """The input cannot be decided on: wrong shape or type, or invalid rows under ``invalid_input: error``.
 
-    The kernel raises its own :class:`policyc.runtime.kernel.InputError` (it imports numpy only, as the
-    standalone module copies it); the runtime re-raises it as this class, which is both.
+    The input reader raises its own :class:`policyc.runtime.inputs.InputError` (it imports numpy only, as
+    the standalone module copies it); the runtime re-raises it as this class, which is both.
     """
 
     stage = "runtime"

@@ -1,7 +1,7 @@
 """Decision kernels: evidence -> log-likelihoods -> posteriors -> conditional risks -> action.
 
-This file imports numpy only and nothing else, not even the rest of the
-runtime: ``policyc compile --emit-python`` copies it verbatim into the
+This file imports numpy and the runtime's input reader (inputs.py) only:
+``policyc compile --emit-python`` copies both files verbatim into the
 standalone module, so the runtime and the module run the same code and give
 bit-identical results. The full derivation is in docs/math.md.
 
@@ -18,36 +18,24 @@ from __future__ import annotations
 
 import numpy as np
 
+from .inputs import InputError, feature_matrix
+
 CHUNK_ROWS = 4096
 """Rows evaluated at once: bounds the (rows, K*d) work array whatever the input size."""
 
-
-class InputError(ValueError):
-    """The input array cannot be decided on: wrong shape or type, or invalid rows under invalid_input: error."""
-
-
-def prepare_input(X: object, n_features: int) -> np.ndarray:
-    """Return ``X`` as a C-ordered float64 array of shape (n, n_features), or raise InputError."""
-    array = np.asarray(X)
-    if array.dtype.kind not in "fiub":
-        raise InputError(f"expected a numeric array, got dtype {array.dtype}")
-    if array.ndim != 2:
-        raise InputError(f"expected a 2-D array of shape (n, {n_features}), got {array.ndim}-D")
-    if array.shape[1] != n_features:
-        raise InputError(f"expected {n_features} feature columns, got {array.shape[1]}")
-    if array.shape[0] == 0:
-        raise InputError("the input has no rows")
-    return np.ascontiguousarray(array, dtype=np.float64)
+REASONS = ("min-risk", "invalid")
+"""Why a row got its action: the minimum conditional risk (the reject action included, when the reject
+cost is the minimum: Chow's ambiguity reject), or invalid input sent to the reject action."""
 
 
 def evaluate(
-    X: object, evidence: str, params: dict[str, np.ndarray], n_features: int, invalid_input: str
+    X: object, evidence: str, params: dict[str, np.ndarray], features: tuple[str, ...], invalid_input: str
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Posteriors, risks and validity for raw input; raise InputError on invalid rows under "error"."""
-    prepared = prepare_input(X, n_features)
+    prepared = feature_matrix(X, features)
     posteriors, risks, valid = posteriors_and_risks(prepared, evidence, params)
     if invalid_input == "error" and not valid.all():
-        raise InputError(invalid_rows_message(valid))
+        raise InputError(invalid_rows_message(valid, prepared=prepared, features=features))
     return posteriors, risks, valid
 
 
@@ -152,10 +140,31 @@ def choose(risks: np.ndarray, valid: np.ndarray, invalid_action: int) -> np.ndar
     return np.where(valid, chosen, invalid_action)
 
 
-def invalid_rows_message(valid: np.ndarray, first_row: int = 0) -> str:
-    """Name the invalid rows, numbered from ``first_row`` (0 for array indices)."""
-    rows = np.flatnonzero(~valid) + first_row
-    shown = ", ".join(str(r) for r in rows[:10])
+def reasons(valid: np.ndarray) -> np.ndarray:
+    """The reason for each row's action (an entry of REASONS), shape (n,)."""
+    return np.asarray(REASONS)[np.where(valid, 0, 1)]
+
+
+def invalid_rows_message(
+    valid: np.ndarray,
+    first_row: int = 0,
+    *,
+    prepared: np.ndarray | None = None,
+    features: tuple[str, ...] = (),
+) -> str:
+    """Name the invalid rows, numbered from ``first_row`` (0 for array indices), and, given the prepared
+    input and the feature names, the columns of each row that hold a missing, NaN or infinite value."""
+    rows = np.flatnonzero(~valid)
+    shown = ", ".join(str(row + first_row) for row in rows[:10])
     more = f" and {rows.size - 10} more" if rows.size > 10 else ""
     numbering = "0-based" if first_row == 0 else f"{first_row}-based"
-    return f"invalid input in row(s) {shown}{more} ({numbering}): NaN, infinity or impossible evidence"
+    where = []
+    if prepared is not None and features:
+        for row in rows[:10]:
+            columns = ", ".join(repr(features[j]) for j in np.flatnonzero(~np.isfinite(prepared[row])))
+            where += [f"row {row + first_row}: {columns}"] if columns else []
+    columns_named = f" ({'; '.join(where)})" if where else ""
+    return (
+        f"invalid input in row(s) {shown}{more} ({numbering}): missing, NaN, infinity or impossible evidence"
+        + columns_named
+    )

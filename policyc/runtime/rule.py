@@ -11,11 +11,11 @@ from typing import Any
 
 import numpy as np
 
-from . import kernel
+from . import inputs, kernel
 from .artefact import decode_rule
 from .errors import ArtefactError, InputError
 
-__all__ = ["Explanation", "Rule", "load_rule"]
+__all__ = ["REASONS", "Explanation", "Rule", "load_rule"]
 
 _REQUIRED = {
     "gaussian": ("centre", "whitening", "whitened_means", "log_normalisers"),
@@ -26,10 +26,12 @@ _REQUIRED = {
 
 @dataclass(frozen=True)
 class Explanation:
-    """Per row: posteriors (n, K), risks (n, A), chosen and runner-up action indices, the risk margin,
-    and whether the row was valid input.
+    """Per row: posteriors (n, K), risks (n, A), the chosen and runner-up actions (indices into
+    ``Rule.actions`` and names), the risk margin, whether the row was valid input, and the reason for
+    the action (an entry of ``REASONS``: ``min-risk`` or ``invalid``).
 
-    ``margin = risks[runner_up] - risks[action]`` (>= 0); invalid rows hold NaN and index -1 for the runner-up.
+    ``margin = risks[runner_up] - risks[action]`` (>= 0); invalid rows hold NaN, index -1 and name None for
+    the runner-up.
     """
 
     posteriors: np.ndarray
@@ -38,6 +40,12 @@ class Explanation:
     runner_up: np.ndarray
     margin: np.ndarray
     valid: np.ndarray
+    reason: np.ndarray
+    action_name: np.ndarray
+    runner_up_name: np.ndarray
+
+
+REASONS = kernel.REASONS
 
 
 class Rule:
@@ -98,18 +106,25 @@ class Rule:
 
     def _evaluate(self, X: object) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         with _input_refusals():
-            return kernel.evaluate(X, self.evidence, self._params, len(self.features), self.invalid_input)
+            return kernel.evaluate(X, self.evidence, self._params, self.features, self.invalid_input)
 
     def posteriors(self, X: object) -> np.ndarray:
-        """P(class | x), shape (n, K), columns in ``classes`` order; NaN rows are invalid input."""
+        """P(class | x), shape (n, K), columns in ``classes`` order; NaN rows are invalid input.
+
+        ``X`` is a 2-D array in ``features`` order, or a table with named columns (a pandas or polars
+        DataFrame, a pyarrow Table or RecordBatch, a mapping of column name to 1-D array) whose feature
+        columns are selected by name. Missing values make a row invalid.
+        """
         return self._evaluate(X)[0]
 
     def risks(self, X: object) -> np.ndarray:
-        """Conditional risks R(a|x), shape (n, A), columns in ``actions`` order (reject last)."""
+        """Conditional risks R(a|x), shape (n, A), columns in ``actions`` order (reject last); input as
+        for :meth:`posteriors`."""
         return self._evaluate(X)[1]
 
     def decide(self, X: object) -> np.ndarray:
-        """Index into ``actions`` of the minimum-risk action per row, shape (n,)."""
+        """Index into ``actions`` of the minimum-risk action per row, shape (n,); input as for
+        :meth:`posteriors`."""
         _, risks, valid = self._evaluate(X)
         return kernel.choose(risks, valid, len(self.actions) - 1)
 
@@ -117,38 +132,37 @@ class Rule:
         return np.asarray(self.actions, dtype=object)[self.decide(X)]
 
     def decide_one(self, record: Mapping[str, float]) -> str:
-        """Decide one record given as a mapping of feature name to value."""
+        """Decide one record given as a mapping of feature name to number (None: a missing value)."""
         return str(self.decide_names(self.row_from_record(record)[None, :])[0])
 
     def row_from_record(self, record: Mapping[str, float]) -> np.ndarray:
-        missing = [f for f in self.features if f not in record]
-        unknown = [k for k in record if k not in self.features]
-        if missing or unknown:
-            parts = [
-                f"missing feature(s) {missing}" if missing else "",
-                f"unknown field(s) {unknown}" if unknown else "",
-            ]
-            raise InputError("; ".join(p for p in parts if p))
-        values = []
-        for name in self.features:
-            value = record[name]
-            if isinstance(value, bool) or not isinstance(value, int | float | np.integer | np.floating):
-                raise InputError(f"feature {name!r} must be a number, got {value!r}")
-            values.append(float(value))
-        return np.array(values, dtype=np.float64)
+        """One record as a float64 row in ``features`` order; raise InputError for unknown or missing
+        fields and for values that are not numbers."""
+        with _input_refusals():
+            return inputs.record_row(record, self.features)
 
     def explain(self, X: object) -> Explanation:
-        """Posteriors, risks, chosen action, runner-up and margin per row (invalid rows per invalid_input)."""
-        explanation = self.assess(X)
+        """Posteriors, risks, chosen action, runner-up, margin and reason per row; invalid rows per
+        invalid_input. ``X`` is anything :meth:`decide` takes, or one record mapping like
+        :meth:`decide_one`'s (giving a one-row explanation)."""
+        prepared = self._matrix(X)
+        explanation = self._explain_matrix(prepared)
         if self.invalid_input == "error" and not explanation.valid.all():
-            raise InputError(kernel.invalid_rows_message(explanation.valid))
+            raise InputError(kernel.invalid_rows_message(explanation.valid, prepared=prepared, features=self.features))
         return explanation
 
     def assess(self, X: object) -> Explanation:
         """Like :meth:`explain`, but invalid rows never raise: they are marked in ``valid`` and sent to reject
         when the policy has a reject option (index ``len(actions) - 1`` otherwise, with NaN risks)."""
+        return self._explain_matrix(self._matrix(X))
+
+    def _matrix(self, X: object) -> np.ndarray:
+        if inputs.is_record(X):
+            return self.row_from_record(X)[None, :]  # type: ignore[arg-type]
         with _input_refusals():
-            prepared = kernel.prepare_input(X, len(self.features))
+            return inputs.feature_matrix(X, self.features)
+
+    def _explain_matrix(self, prepared: np.ndarray) -> Explanation:
         posteriors, risks, valid = kernel.posteriors_and_risks(prepared, self.evidence, self._params)
         action = kernel.choose(risks, valid, len(self.actions) - 1)
         n_rows = risks.shape[0]
@@ -159,16 +173,20 @@ class Rule:
             others[np.arange(n_rows), action] = np.inf
             second = np.argmin(others, axis=1)
             runner_up = np.where(valid, second, -1)
+            # margin = R(runner-up|x) - R(chosen|x) >= 0
             margin = np.where(valid, others[np.arange(n_rows), second] - risks[np.arange(n_rows), action], np.nan)
-        return Explanation(posteriors, risks, action, runner_up, margin, valid)
+        names = np.asarray([*self.actions, None], dtype=object)  # index -1 (no runner-up) names None
+        return Explanation(
+            posteriors, risks, action, runner_up, margin, valid, kernel.reasons(valid), names[action], names[runner_up]
+        )
 
 
 @contextmanager
 def _input_refusals() -> Iterator[None]:
-    """The kernel's InputError (numpy-only code, shared with the standalone module) as the runtime's own."""
+    """The input reader's InputError (numpy-only code, shared with the standalone module) as the runtime's own."""
     try:
         yield
-    except kernel.InputError as exc:
+    except inputs.InputError as exc:
         if isinstance(exc, InputError):
             raise
         raise InputError(str(exc)) from None

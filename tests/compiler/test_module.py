@@ -28,7 +28,7 @@ from policyc.compiler import module_source, write_module
 from policyc.compiler.build import compile_policy
 from policyc.runtime import Rule
 
-STANDARD_LIBRARY_ALLOWED = {"__future__"}
+STANDARD_LIBRARY_ALLOWED = {"__future__", "typing"}
 RUFF = shutil.which("ruff") or str(Path(sys.executable).parent / "ruff")
 
 

@@ -265,13 +265,14 @@ def test_float32_input_matches_float64(packhouse: Rule, incoming: np.ndarray) ->
         (np.zeros((3, 3)), "expected 4 feature columns, got 3"),
         (np.zeros((3, 5)), "expected 4 feature columns, got 5"),
         (np.array([["a", "b", "c", "d"]]), "numeric"),
-        (np.array([[1.0, None, 2.0, 3.0]], dtype=object), "numeric"),
+        (np.array([[1.0, "2.0", 2.0, 3.0]], dtype=object), r"row 0, column 1 must be a number, got str '2\.0'"),
+        (np.zeros((3, 4), dtype=bool), "booleans"),
         (np.zeros((3, 4), dtype=complex), "numeric"),
         (np.zeros(4), "2-D"),
         (np.zeros((2, 2, 4)), "2-D"),
         (np.zeros((0, 4)), "no rows"),
     ],
-    ids=["narrow", "wide", "strings", "object", "complex", "1-D", "3-D", "empty"],
+    ids=["narrow", "wide", "strings", "object", "bool", "complex", "1-D", "3-D", "empty"],
 )
 def test_bad_input_raises_input_error(packhouse: Rule, array: np.ndarray, message: str) -> None:
     for method in (packhouse.decide, packhouse.posteriors, packhouse.risks, packhouse.explain):

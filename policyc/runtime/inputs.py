@@ -1,0 +1,207 @@
+"""What a caller passes -> the (n, d) float64 feature matrix the kernels evaluate.
+
+This file imports numpy only: ``policyc compile --emit-python`` copies it, like
+kernel.py, into every standalone module, so the module reads input exactly as
+the runtime does.
+
+Accepted input:
+
+* a 2-D array or nested lists of shape (n, d): **positional**, columns in the
+  rule's feature order; a masked array's masked entries are missing values;
+* a **table with named columns**: a pandas or polars DataFrame, a pyarrow Table
+  or RecordBatch, a numpy structured array, or a mapping of column name to 1-D
+  array. The rule's features are selected by name; other columns are ignored; a
+  feature column that is absent or appears more than once is refused by name.
+  The table libraries are recognised by their attributes, never imported.
+
+Missing values (None, nulls, pandas NA, masked entries, NaN) become NaN, which
+every kernel treats as invalid input, so such a row follows ``invalid_input``.
+Booleans, text, dates and complex numbers are refused rather than guessed at: a
+boolean column taken as 0/1 or text parsed as numbers would decide on values the
+caller never wrote.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+
+class InputError(ValueError):
+    """The input cannot be decided on: wrong shape, type or columns, or invalid rows under invalid_input: error."""
+
+
+_SHOWN = 10
+"""Names listed in one message before "and N more"."""
+
+
+def feature_matrix(X: object, features: tuple[str, ...]) -> np.ndarray:
+    """Return the input as a C-ordered float64 array of shape (n, len(features)); missing values are NaN.
+
+    Raise InputError when the input cannot be read as feature values (see the module docstring).
+    """
+    kind = _table_kind(X)
+    matrix = _from_array(X, len(features)) if kind is None else _from_table(X, kind, features)
+    if matrix.shape[0] == 0:
+        raise InputError("the input has no rows")
+    return matrix
+
+
+def is_record(X: object) -> bool:
+    """Whether ``X`` is one record: a mapping whose values are all single values, not columns."""
+    return _table_kind(X) == "mapping" and all(np.ndim(value) == 0 for value in X.values())  # type: ignore[attr-defined]
+
+
+def record_row(record: object, features: tuple[str, ...]) -> np.ndarray:
+    """One record, a mapping of feature name to number, as a float64 row; None is a missing value (NaN).
+
+    Unlike a table, a record may hold no other fields: a misspelt name is an error, not an ignored column.
+    """
+    if _table_kind(record) != "mapping":
+        raise InputError(f"expected one record as a mapping of feature name to number, got {type(record).__name__}")
+    fields: Any = record
+    missing = [name for name in features if name not in fields]
+    unknown = [key for key in fields if key not in features]
+    problems = [
+        f"{what} {_listed(names)}"
+        for what, names in (("missing feature(s)", missing), ("unknown field(s)", unknown))
+        if names
+    ]
+    if problems:
+        raise InputError("; ".join(problems))
+    return np.array([_number(fields[name], f"feature {name!r}") for name in features])
+
+
+def _table_kind(X: object) -> str | None:
+    """Which kind of named-column table ``X`` is, judged by its attributes; None for a plain array or list."""
+    if isinstance(X, np.ndarray):
+        return "structured" if X.dtype.names is not None else None
+    if hasattr(X, "column_names") and hasattr(X, "column"):
+        return "arrow"
+    if hasattr(X, "columns") and hasattr(X, "iloc"):
+        return "pandas"
+    if hasattr(X, "columns") and hasattr(X, "to_series"):
+        return "polars"
+    if hasattr(X, "keys") and hasattr(X, "values") and hasattr(X, "__getitem__"):
+        return "mapping"
+    return None
+
+
+def _column_names(table: Any, kind: str) -> list[object]:
+    if kind == "structured":
+        return list(table.dtype.names)
+    if kind == "arrow":
+        return list(table.column_names)
+    if kind == "mapping":
+        return list(table.keys())
+    return list(table.columns)
+
+
+def _column(table: Any, kind: str, name: object, index: int) -> object:
+    """The column at ``index`` (by position, so that a duplicated name cannot pick another one)."""
+    if kind == "arrow":
+        return table.column(index)
+    if kind == "pandas":
+        return table.iloc[:, index]
+    if kind == "polars":
+        return table.to_series(index)
+    return table[name]
+
+
+def _from_table(table: object, kind: str, features: tuple[str, ...]) -> np.ndarray:
+    names = _column_names(table, kind)
+    positions: dict[object, list[int]] = {}
+    for index, name in enumerate(names):
+        positions.setdefault(name, []).append(index)
+    missing = [name for name in features if name not in positions]
+    duplicated = [name for name in features if len(positions.get(name, ())) > 1]
+    if missing:
+        raise InputError(f"the input has no column for feature(s) {_listed(missing)}; its columns: {_listed(names)}")
+    if duplicated:
+        counts = ", ".join(f"{name!r} ({len(positions[name])} times)" for name in duplicated)
+        raise InputError(f"feature column(s) {counts} appear more than once in the input; keep one of each")
+    columns = [_column_values(_column(table, kind, name, positions[name][0]), name) for name in features]
+    lengths = {column.shape[0] for column in columns}
+    if len(lengths) > 1:
+        shown = ", ".join(f"{name!r}: {column.shape[0]}" for name, column in zip(features, columns, strict=True))
+        raise InputError(f"the feature columns differ in length ({shown})")
+    return np.ascontiguousarray(np.column_stack(columns))
+
+
+def _column_values(column: object, name: str) -> np.ndarray:
+    values = _as_float(column, f"column {name!r}")
+    if values.ndim == 0:
+        raise InputError(f"column {name!r} is a single value, not a column; decide_one takes one record")
+    if values.ndim != 1:
+        raise InputError(f"column {name!r} has shape {values.shape}; a column must be one-dimensional")
+    return values
+
+
+def _from_array(X: object, n_features: int) -> np.ndarray:
+    try:
+        array = X if np.ma.isMaskedArray(X) else np.asarray(X)
+    except (ValueError, TypeError) as exc:
+        raise InputError(f"the input cannot be read as an array: {exc}") from None
+    assert isinstance(array, np.ndarray)
+    if array.dtype.kind not in "fiubO":
+        raise InputError(f"expected a numeric array, got dtype {array.dtype}")
+    if array.ndim != 2:
+        hint = "; for one record use decide_one, or X[None, :]" if array.ndim == 1 else ""
+        raise InputError(f"expected a 2-D array of shape (n, {n_features}), got {array.ndim}-D{hint}")
+    if array.shape[1] != n_features:
+        raise InputError(f"expected {n_features} feature columns, got {array.shape[1]}")
+    return _as_float(array, "the input")
+
+
+def _as_float(values: object, what: str) -> np.ndarray:
+    """float64 values (C order) with missing entries as NaN; refuse booleans, text and other non-numbers."""
+    masked: Any = values
+    mask = np.ma.getmaskarray(masked) if np.ma.isMaskedArray(masked) else None
+    try:
+        data = np.asarray(masked.data if mask is not None else values)
+    except (ValueError, TypeError) as exc:
+        raise InputError(f"{what} cannot be read as numbers: {exc}") from None
+    if data.dtype.kind == "b":
+        raise InputError(f"{what} holds booleans; convert them to numbers (0.0 and 1.0) if that is what they mean")
+    if data.dtype.kind == "O":
+        result = _objects_as_float(data, what)
+    elif data.dtype.kind in "fiu":
+        # a wider float beyond the float64 range becomes ±inf: an invalid row; a masked input is copied, so
+        # that masking never writes to the caller's array
+        with np.errstate(over="ignore"):
+            result = np.array(data, np.float64, order="C") if mask is not None else np.asarray(data, np.float64, "C")
+    else:
+        raise InputError(f"{what} is not numeric (dtype {data.dtype})")
+    if mask is not None:
+        result[mask] = np.nan
+    return result
+
+
+def _objects_as_float(data: np.ndarray, what: str) -> np.ndarray:
+    result = np.empty(data.shape, dtype=np.float64)
+    for index, value in np.ndenumerate(data):
+        place = ", ".join(f"{axis} {i}" for axis, i in zip(("row", "column"), index, strict=False))
+        result[index] = _number(value, f"{what}, {place}" if place else what)
+    return result
+
+
+def _number(value: object, what: str) -> float:
+    """A Python or numpy number as float; None and pandas NA are missing (NaN); anything else is refused."""
+    if value is None or type(value).__name__ == "NAType":
+        return float("nan")
+    if isinstance(value, bool | np.bool_):
+        raise InputError(f"{what} must be a number, got bool {value!r}: booleans are refused; pass 0.0 or 1.0")
+    if not isinstance(value, int | float | np.integer | np.floating):
+        shown = repr(value) if len(repr(value)) <= 40 else repr(value)[:37] + "..."
+        raise InputError(f"{what} must be a number, got {type(value).__name__} {shown}")
+    try:
+        return float(value)
+    except OverflowError:  # a Python int beyond float64; its size in bits, since str() refuses very long ints
+        raise InputError(f"{what} is an integer of {int(value).bit_length()} bits, beyond the float64 range") from None
+
+
+def _listed(names: list[Any]) -> str:
+    shown = ", ".join(repr(name) for name in names[:_SHOWN])
+    more = f" and {len(names) - _SHOWN} more" if len(names) > _SHOWN else ""
+    return f"[{shown}{more}]"
