@@ -15,6 +15,7 @@ from policyc import __version__
 from policyc.batch import decide_file
 from policyc.compiler import write_artefact, write_module
 from policyc.compiler.build import compile_policy
+from policyc.geometry.reach import ReachabilityError
 from policyc.language.checks import CheckReport, action_regions, check_file
 from policyc.language.diagnostics import render_json, render_text
 from policyc.render import format_matrix
@@ -135,7 +136,10 @@ def _echo_report(report: CheckReport, show_source: bool, show: bool) -> None:
 def _echo_policy_tables(report: CheckReport) -> None:
     policy = report.policy
     assert policy is not None
-    regions = action_regions(policy)
+    try:
+        regions = action_regions(policy)
+    except ReachabilityError:  # already reported by check as loss-not-analysable
+        return
     if regions is None:
         return
     unit = f" ({policy.loss_unit})" if policy.loss_unit else ""

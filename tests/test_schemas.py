@@ -10,7 +10,10 @@ from typing import Any
 
 import pytest
 from jsonschema import Draft202012Validator, ValidationError
+from pydantic import TypeAdapter
+from pydantic import ValidationError as PydanticValidationError
 
+from policyc.language.model import Name
 from policyc.language.source import load_source
 from policyc.schemas import POLICY_SCHEMA_ID, policy_schema, policy_schema_text
 
@@ -109,3 +112,23 @@ def test_schema_describes_both_matrix_keys_and_every_evidence_kind() -> None:
     text = json.dumps(schema)
     for kind in ("gaussian", "posterior", "log-likelihood"):
         assert f'"{kind}"' in text
+
+
+@pytest.mark.parametrize(
+    "name", ["premium", "café 2", "a", "x" * 200, "", " lead", "trail ", "tab\tinside", "bell\x07", "x" * 201, 7]
+)
+def test_schema_and_model_agree_on_names(name: object) -> None:
+    # The schema had no pattern for names, so editors accepted names the loader refuses.
+    schema = json.loads(SCHEMA_FILE.read_text(encoding="utf-8"))
+    name_schemas = [
+        schema["properties"]["classes"]["items"],
+        schema["properties"]["actions"]["items"],
+        schema["$defs"]["TrainingData"]["properties"]["label"],
+    ]
+    try:
+        TypeAdapter(Name).validate_python(name, strict=True)
+    except PydanticValidationError:
+        model_accepts = False
+    else:
+        model_accepts = True
+    assert [Draft202012Validator(s).is_valid(name) for s in name_schemas] == [model_accepts] * 3, name

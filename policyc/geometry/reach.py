@@ -11,7 +11,11 @@ from scipy.optimize import linprog
 
 from policyc.geometry.decisions import margin_tolerance
 
-__all__ = ["margin_tolerance", "reject_reach_value", "winning_margin"]
+__all__ = ["ReachabilityError", "margin_tolerance", "reject_reach_value", "winning_margin"]
+
+
+class ReachabilityError(ArithmeticError):
+    """The linear program over the simplex found no solution (it always has one for finite losses)."""
 
 
 def winning_margin(loss: np.ndarray, row: int) -> tuple[float, np.ndarray]:
@@ -34,23 +38,32 @@ def winning_margin(loss: np.ndarray, row: int) -> tuple[float, np.ndarray]:
     -------
     margin : float
     posterior : array of shape (n_classes,), where the margin is reached.
+
+    Raises
+    ------
+    ReachabilityError
+        When the solver fails; callers that report on a policy turn it into a diagnostic.
     """
     n_rows, n_classes = loss.shape
     others = [b for b in range(n_rows) if b != row]
     if not others:
         return float("inf"), np.full(n_classes, 1.0 / n_classes)
+    # Solve on λ / s with s = max|λ|: the margin scales with the losses (t = s t'), and the solver treats
+    # coefficients of 1e20 and more as infinite, so unscaled losses of that size made it fail.
+    scale = float(np.max(np.abs(loss))) or 1.0
+    scaled = loss / scale
     objective = np.zeros(n_classes + 1)
     objective[-1] = -1.0  # linprog minimises, so minimise -t
-    a_ub = np.hstack([loss[row] - loss[others], np.ones((len(others), 1))])
+    a_ub = np.hstack([scaled[row] - scaled[others], np.ones((len(others), 1))])
     a_eq = np.hstack([np.ones((1, n_classes)), np.zeros((1, 1))])
     bounds = [(0.0, None)] * n_classes + [(None, None)]
     result = linprog(
         objective, A_ub=a_ub, b_ub=np.zeros(len(others)), A_eq=a_eq, b_eq=[1.0], bounds=bounds, method="highs"
     )
-    if not result.success:  # pragma: no cover - the feasible set is a bounded simplex
-        raise RuntimeError(f"reachability LP failed: {result.message}")
+    if not result.success:  # the feasible set is a bounded simplex, so only a numerical failure lands here
+        raise ReachabilityError(f"the linear program over the probability simplex failed: {result.message}")
     posterior = np.clip(result.x[:n_classes], 0.0, None)
-    return float(-result.fun), posterior / posterior.sum()
+    return float(-result.fun) * scale, posterior / posterior.sum()  # t = s t'
 
 
 def reject_reach_value(loss: np.ndarray) -> float:

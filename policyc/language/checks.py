@@ -20,7 +20,7 @@ from pathlib import Path
 import numpy as np
 
 from policyc.files import file_sha256
-from policyc.geometry.reach import margin_tolerance, reject_reach_value, winning_margin
+from policyc.geometry.reach import ReachabilityError, margin_tolerance, reject_reach_value, winning_margin
 from policyc.language.diagnostics import Diagnostic, PolicyCheckError, PolicyError, Severity
 from policyc.language.model import GaussianEvidence, Policy, PosteriorEvidence, build_policy
 from policyc.language.source import SourceDocument, load_source
@@ -297,14 +297,25 @@ def action_regions(policy: Policy) -> list[ActionRegion] | None:
 
 def every_action_is_reachable(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
     loss = _complete_matrix(policy)
-    regions = action_regions(policy)
+    try:
+        regions = action_regions(policy)
+        value = reject_reach_value(loss[:-1]) if loss is not None and policy.reject is not None else None
+    except ReachabilityError as exc:
+        yield _error(
+            "loss-not-analysable",
+            f"cannot tell which actions are ever chosen: {exc}",
+            (policy.matrix_key,),
+            "losses of very different orders of magnitude defeat the analysis; state them in a unit that "
+            "keeps them within a few orders of magnitude",
+        )
+        return
     if loss is None or regions is None:
         return
     for row, region in enumerate(regions):
         if region.reachable or _dominator(loss, row) is not None:
             continue  # dominated rows are reported by no_dominated_actions
         if row == len(policy.actions):
-            value = reject_reach_value(loss[:-1])
+            assert value is not None
             yield _warning(
                 "reject-never-taken",
                 f"the reject cost {loss[-1, 0]:g} is at least V = {value:.6g}, the largest minimum "

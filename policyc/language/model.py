@@ -14,7 +14,6 @@ from typing import Annotated, Any, Literal
 import numpy as np
 from pydantic import (
     BaseModel,
-    BeforeValidator,
     ConfigDict,
     Field,
     StringConstraints,
@@ -39,16 +38,11 @@ __all__ = [
 ]
 
 
-def _name_from_scalar(value: object) -> object:
-    # Integer labels (digit classes 0..9) are names too; YAML reads them as numbers.
-    if isinstance(value, int) and not isinstance(value, bool):
-        return str(value)
-    return value
-
-
+# Names (classes, actions, features, columns) are text. An unquoted 7 is a number and is refused with a hint
+# to quote it, never turned into "7": the same spelling would otherwise mean a number in one place and a
+# name in another. No validator wraps the type, so the pattern and lengths reach the JSON Schema.
 Name = Annotated[
     str,
-    BeforeValidator(_name_from_scalar),
     StringConstraints(min_length=1, max_length=200, pattern=r"^[^\s\x00-\x1f](?:[^\x00-\x1f]*[^\s\x00-\x1f])?$"),
 ]
 Identifier = Annotated[str, StringConstraints(pattern=r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,99}$")]
@@ -248,7 +242,15 @@ def _diagnostic_from_pydantic(error: Mapping[str, Any], data: Mapping[str, Any])
         message = f"unknown key {path[-1]!r}; check its spelling against the policy schema"
     elif message.startswith("Value error, "):
         message = message.removeprefix("Value error, ")
-    return Diagnostic(code=code, severity=Severity.ERROR, message=message, path=path)
+    return Diagnostic(code=code, severity=Severity.ERROR, message=message, path=path, hint=_hint(error))
+
+
+def _hint(error: Mapping[str, Any]) -> str | None:
+    """Advice for text given as a number: YAML read an unquoted 7 or 0.5 as a number."""
+    value = error.get("input")
+    if error["type"] == "string_type" and isinstance(value, int | float) and not isinstance(value, bool):
+        return f'names and text are quoted when they look like numbers: write "{value}"'
+    return None
 
 
 def _data_path(loc: tuple[Any, ...], data: Any, last_is_missing: bool) -> tuple[str | int, ...]:

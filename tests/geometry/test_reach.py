@@ -229,3 +229,17 @@ def test_reject_never_taken_exactly_when_cost_reaches_v(c01: float, c10: float, 
     fired = [x for x in report.diagnostics if x.code == "reject-never-taken"]
     assert len(fired) == (1 if d >= value else 0)
     assert all(x.line == 8 for x in fired)
+
+
+@PROPERTY_SETTINGS
+@given(st.integers(2, 5), st.integers(-300, 300), st.integers(0, 2**32 - 1))
+def test_winning_margin_is_homogeneous_over_every_magnitude(k: int, exponent: int, seed: int) -> None:
+    # t(s·λ) = s·t(λ) for s > 0: scaling the constraints (λ_r - λ_b)·p + t ≤ 0 scales t (common practice,
+    # no source). Losses of 1e20 used to make the solver fail, since it reads such coefficients as infinite.
+    loss = np.random.default_rng(seed).uniform(0.0, 10.0, size=(k + 1, k))
+    scale = 10.0**exponent
+    for row in range(k + 1):
+        margin, posterior = winning_margin(loss, row)
+        scaled_margin, scaled_posterior = winning_margin(loss * scale, row)
+        assert scaled_margin == pytest.approx(margin * scale, rel=1e-6, abs=1e-7 * scale * np.ptp(loss))
+        assert np.isclose(posterior.sum(), 1.0) and np.isclose(scaled_posterior.sum(), 1.0)

@@ -83,12 +83,42 @@ def test_reject_action_defaults_to_reject() -> None:
     assert policy.reject is not None and policy.reject.action == "reject"
 
 
-def test_integer_class_names_become_strings() -> None:
+@pytest.mark.parametrize(
+    ("old", "new", "where"),
+    [
+        ("classes: [premium, standard, defect]", "classes: [premium, 7, defect]", (2, 20)),
+        ("actions: [pack, juice]", "actions: [pack, 3.5]", (4, 17)),
+        (
+            "columns: {premium: l_p, standard: l_s, defect: l_d}",
+            "columns: {premium: 1, standard: l_s, defect: l_d}",
+            (10, 22),
+        ),
+    ],
+    ids=["class", "action", "column"],
+)
+def test_numbers_are_not_names(old: str, new: str, where: tuple[int, int]) -> None:
+    # Unquoted integers used to become text silently ("7"), though names are text everywhere else.
+    with pytest.raises(PolicySchemaError) as info:
+        build(BASE.replace(old, new))
+    (diagnostic,) = info.value.diagnostics
+    assert (diagnostic.code, diagnostic.line, diagnostic.col) == ("expected-text", *where)
+    assert diagnostic.hint is not None and "quoted" in diagnostic.hint
+
+
+def test_feature_and_label_names_must_be_text() -> None:
+    text = BASE.replace(
+        "  kind: log-likelihood\n  columns: {premium: l_p, standard: l_s, defect: l_d}\n",
+        "  kind: gaussian\n  features: [mass, 2]\n  training: {data: t.csv, label: 5}\n",
+    )
+    assert schema_errors(text) == [("expected-text", 10, 20), ("expected-text", 11, 34)]
+
+
+def test_quoted_numbers_are_names() -> None:
     text = """\
 policy: digits
-classes: [0, 1]
+classes: ["0", "1"]
 priors: {0: 0.5, 1: 0.5}
-actions: [0, 1]
+actions: ["0", "1"]
 loss:
   0: {0: 0, 1: 1}
   1: {0: 1, 1: 0}
