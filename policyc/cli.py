@@ -12,18 +12,11 @@ from typing import TYPE_CHECKING, Any
 import click
 
 from policyc import __version__
-from policyc.batch import decide_file
-from policyc.compiler import write_artefact, write_module
-from policyc.compiler.build import compile_policy
-from policyc.geometry.reach import ReachabilityError
-from policyc.language.checks import CheckReport, action_regions, check_file
-from policyc.language.diagnostics import render_json, render_text
-from policyc.render import format_matrix
-from policyc.review.inspect import inspection, render_inspection
-from policyc.runtime import load_rule
-from policyc.schemas import policy_schema_text
 
+# Each command imports what it needs inside its body: `policyc --help` loads neither numpy, scipy, pyarrow,
+# pydantic nor matplotlib (tests/test_startup.py), and `policyc check` loads no pyarrow.
 if TYPE_CHECKING:
+    from policyc.language.checks import CheckReport
     from policyc.review.plot import FigureSize
     from policyc.review.shared.loading import LoadedRule
 
@@ -53,11 +46,14 @@ class _Commands(click.Group):
     """The command group that turns every policyc error into its message and exit code, in this one place."""
 
     def invoke(self, ctx: click.Context) -> Any:
-        from policyc.errors import PolicycError
-
         try:
             return super().invoke(ctx)
-        except PolicycError as error:
+        except Exception as error:
+            # Whatever raised a PolicycError has imported its module; importing it here would cost
+            # `policyc COMMAND --help` numpy.
+            family = sys.modules.get("policyc.runtime.errors")
+            if family is None or not isinstance(error, family.PolicycError):
+                raise
             if ctx.meta.get(_FORMAT_KEY) == "json":
                 click.echo(json.dumps(error.as_json(), indent=2), err=True)
             else:
@@ -108,6 +104,9 @@ def check(policies: tuple[Path, ...], output_format: str, strict: bool, show: bo
 
     Exit 0 when clean or warnings only, 1 on errors (with --strict, on warnings too), 2 on usage errors.
     """
+    from policyc.language.checks import check_file
+    from policyc.language.diagnostics import render_json
+
     reports = [check_file(path) for path in policies]
     diagnostics = [d for report in reports for d in report.diagnostics]
     if output_format == "json":
@@ -121,6 +120,8 @@ def check(policies: tuple[Path, ...], output_format: str, strict: bool, show: bo
 
 
 def _echo_report(report: CheckReport, show_source: bool, show: bool) -> None:
+    from policyc.language.diagnostics import render_text
+
     lines = {report.name: report.source_lines} if show_source else {}
     if report.diagnostics:
         click.echo(render_text(report.diagnostics, lines, show_source))
@@ -134,6 +135,10 @@ def _echo_report(report: CheckReport, show_source: bool, show: bool) -> None:
 
 
 def _echo_policy_tables(report: CheckReport) -> None:
+    from policyc.geometry.reach import ReachabilityError
+    from policyc.language.checks import action_regions
+    from policyc.render import format_matrix
+
     policy = report.policy
     assert policy is not None
     try:
@@ -165,6 +170,8 @@ def _echo_policy_tables(report: CheckReport) -> None:
 @main.command()
 def schema() -> None:
     """Print the JSON Schema of the policy language."""
+    from policyc.schemas import policy_schema_text
+
     click.echo(policy_schema_text(), nl=False)
 
 
@@ -223,6 +230,9 @@ def _progress(label: str) -> Iterator[_ProgressDisplay | None]:
 )
 def compile_command(policy: Path, rule_file: Path, module_file: Path | None) -> None:
     """Check POLICY, fit its evidence model and write the frozen rule."""
+    from policyc.compiler import compile_policy, write_artefact, write_module
+    from policyc.language.diagnostics import render_text
+
     with _progress("fitting") as progress:
         compiled = compile_policy(policy, progress)
     if compiled.diagnostics:
@@ -247,6 +257,9 @@ def compile_command(policy: Path, rule_file: Path, module_file: Path | None) -> 
 @click.option("--explain", is_flag=True, help="Also write posteriors, risks, runner-up action and margin.")
 def decide(rule_file: Path, data: Path, output: Path, explain: bool) -> None:
     """Decide every row of DATA (CSV or Parquet) with RULE_FILE; add an `action` column."""
+    from policyc.batch import decide_file
+    from policyc.runtime import load_rule
+
     rule = load_rule(rule_file)
     with _progress("deciding") as progress:
         counts = decide_file(rule, data, output, explain, progress)
@@ -267,6 +280,9 @@ def decide(rule_file: Path, data: Path, output: Path, explain: bool) -> None:
 )
 def inspect(rule_file: Path, output_format: str) -> None:
     """Show a rule's manifest, hashes, names, priors, loss table and (two classes) posterior thresholds."""
+    from policyc.review.inspect import inspection, render_inspection
+    from policyc.runtime import load_rule
+
     rule = load_rule(rule_file)
     report = inspection(rule)
     if output_format == "json":
@@ -319,6 +335,7 @@ SEED_OPTION = click.option(
 
 def _load_subject(path: Path) -> LoadedRule:
     """A policy file (checked and compiled in memory) or a rule file; its warnings on standard error."""
+    from policyc.language.diagnostics import render_text
     from policyc.review.shared.loading import load_rule_or_policy
 
     loaded = load_rule_or_policy(path)
@@ -629,6 +646,7 @@ def priors(rule_file: Path, data: Path, output_format: str, confidence: float) -
     rule's decisions may no longer be the cheapest; review the priors before recompiling.
     """
     from policyc.review.priors import estimate_priors
+    from policyc.runtime import load_rule
 
     rule = load_rule(rule_file)
     estimate = estimate_priors(rule, data, confidence)

@@ -6,16 +6,35 @@ and by the reports (the reach of the reject option on the risk-reject curve).
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
-from scipy.optimize import linprog
 
 from policyc.geometry.decisions import margin_tolerance
 
-__all__ = ["ReachabilityError", "margin_tolerance", "reject_reach_value", "winning_margin"]
+__all__ = [
+    "WITNESS_POINTS",
+    "ReachabilityError",
+    "linprog",
+    "margin_tolerance",
+    "reject_reach_value",
+    "winning_margin",
+    "wins_somewhere",
+]
+
+WITNESS_POINTS = 256
+"""Uniform points tried before the linear program in :func:`wins_somewhere`: enough to find most regions."""
 
 
 class ReachabilityError(ArithmeticError):
     """The linear program over the simplex found no solution (it always has one for finite losses)."""
+
+
+def linprog(*args: Any, **kwargs: Any) -> Any:
+    """``scipy.optimize.linprog``, imported on first use: it is a third of `policyc check`'s start-up."""
+    from scipy.optimize import linprog as solve
+
+    return solve(*args, **kwargs)
 
 
 def winning_margin(loss: np.ndarray, row: int) -> tuple[float, np.ndarray]:
@@ -71,3 +90,37 @@ def reject_reach_value(loss: np.ndarray) -> float:
     augmented = np.vstack([loss, np.zeros(loss.shape[1])])
     margin, _ = winning_margin(augmented, augmented.shape[0] - 1)
     return margin  # margin of a zero-cost reject row = V - 0
+
+
+def wins_somewhere(loss: np.ndarray, row: int, tolerance: float) -> bool:
+    """Whether ``row`` beats every other row by more than ``tolerance`` at some posterior.
+
+    A few posteriors are tried first: the vertices, the centre and the edge midpoints of the simplex, and
+    ``WITNESS_POINTS`` seeded uniform points. The margin at any posterior is at most the linear program's
+    maximum (:func:`winning_margin`), so a margin above the tolerance there settles the question without the
+    program (and without importing scipy); otherwise the program decides. The answer is the program's either way.
+
+    Parameters
+    ----------
+    loss : array of shape (n_rows, n_classes)
+    row : int
+    tolerance : float
+        Margins at or below this are ties.
+
+    Returns
+    -------
+    bool
+    """
+    n_rows, n_classes = loss.shape
+    if n_rows == 1:
+        return True
+    vertices = np.eye(n_classes)
+    first, second = np.triu_indices(n_classes, k=1)
+    uniform = np.random.default_rng(0).dirichlet(np.ones(n_classes), WITNESS_POINTS)
+    centre = np.full(n_classes, 1.0 / n_classes)
+    candidates = np.vstack([vertices, centre, (vertices[first] + vertices[second]) / 2, uniform])
+    risks = candidates @ loss.T  # R(a|p) = Σ_k λ(a|k) p_k at every candidate p
+    others = np.delete(risks, row, axis=1)
+    if np.any(others.min(axis=1) - risks[:, row] > tolerance):
+        return True
+    return winning_margin(loss, row)[0] > tolerance

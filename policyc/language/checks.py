@@ -20,7 +20,13 @@ from pathlib import Path
 import numpy as np
 
 from policyc.files import file_sha256
-from policyc.geometry.reach import ReachabilityError, margin_tolerance, reject_reach_value, winning_margin
+from policyc.geometry.reach import (
+    ReachabilityError,
+    margin_tolerance,
+    reject_reach_value,
+    winning_margin,
+    wins_somewhere,
+)
 from policyc.language.diagnostics import Diagnostic, PolicyCheckError, PolicyError, Severity
 from policyc.language.model import GaussianEvidence, Policy, PosteriorEvidence, build_policy
 from policyc.language.source import SourceDocument, load_source
@@ -286,20 +292,28 @@ def action_regions(policy: Policy) -> list[ActionRegion] | None:
     tolerance = margin_tolerance(loss)
     regions = []
     for row in range(loss.shape[0]):
-        # Ties go to the earlier row, so a later identical copy never takes a region from this row.
-        keep = [b for b in range(loss.shape[0]) if b <= row or not np.array_equal(loss[b], loss[row])]
-        margin, posterior = winning_margin(loss[keep], row)
+        margin, posterior = winning_margin(_contenders(loss, row), row)
         regions.append(
             ActionRegion(_row_name(policy, row), margin if margin > tolerance else 0.0, tuple(posterior.tolist()))
         )
     return regions
 
 
+def _contenders(loss: np.ndarray, row: int) -> np.ndarray:
+    """The rows ``row`` competes with, itself still at index ``row``.
+
+    Ties go to the earlier row, so a later identical copy never takes a region from this row.
+    """
+    keep = [b for b in range(loss.shape[0]) if b <= row or not np.array_equal(loss[b], loss[row])]
+    return loss[keep]
+
+
 def every_action_is_reachable(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
     loss = _complete_matrix(policy)
+    if loss is None:
+        return
     try:
-        regions = action_regions(policy)
-        value = reject_reach_value(loss[:-1]) if loss is not None and policy.reject is not None else None
+        findings = list(_unreachable_rows(policy, loss))
     except ReachabilityError as exc:
         yield _error(
             "loss-not-analysable",
@@ -309,13 +323,17 @@ def every_action_is_reachable(policy: Policy, context: CheckContext) -> Iterator
             "keeps them within a few orders of magnitude",
         )
         return
-    if loss is None or regions is None:
-        return
-    for row, region in enumerate(regions):
-        if region.reachable or _dominator(loss, row) is not None:
+    yield from findings
+
+
+def _unreachable_rows(policy: Policy, loss: np.ndarray) -> Iterator[Diagnostic]:
+    """Rows never the minimum-risk choice; a linear program runs only where no witness posterior settles it."""
+    tolerance = margin_tolerance(loss)
+    for row in range(loss.shape[0]):
+        if wins_somewhere(_contenders(loss, row), row, tolerance) or _dominator(loss, row) is not None:
             continue  # dominated rows are reported by no_dominated_actions
         if row == len(policy.actions):
-            assert value is not None
+            value = reject_reach_value(loss[:-1])
             yield _warning(
                 "reject-never-taken",
                 f"the reject cost {loss[-1, 0]:g} is at least V = {value:.6g}, the largest minimum "
@@ -326,7 +344,7 @@ def every_action_is_reachable(policy: Policy, context: CheckContext) -> Iterator
         else:
             yield _warning(
                 "unreachable-action",
-                f"action {region.name!r} is not the minimum-risk choice for any posterior",
+                f"action {_row_name(policy, row)!r} is not the minimum-risk choice for any posterior",
                 _row_path(policy, row),
                 "lower its losses where it should win, or remove it",
             )

@@ -22,7 +22,9 @@ import pytest
 from hypothesis import HealthCheck, assume, given, settings
 from hypothesis import strategies as st
 
-from policyc.geometry.reach import reject_reach_value, winning_margin
+from policyc.geometry import reach
+from policyc.geometry.decisions import margin_tolerance
+from policyc.geometry.reach import reject_reach_value, winning_margin, wins_somewhere
 from policyc.language.checks import (
     CheckContext,
     action_regions,
@@ -74,6 +76,33 @@ def with_reject_row(loss: np.ndarray, cost: float | None) -> np.ndarray:
 
 
 # --- LP reachability against a dense grid ------------------------------------------------------------
+
+
+@PROPERTY_SETTINGS
+@given(loss_matrices())
+def test_wins_somewhere_gives_the_linear_programs_verdict(case: tuple[np.ndarray, float | None]) -> None:
+    # the witness points only short-cut the program; the verdict must be the program's
+    loss = with_reject_row(*case)
+    tolerance = margin_tolerance(loss)
+    for row in range(loss.shape[0]):
+        assert wins_somewhere(loss, row, tolerance) == (winning_margin(loss, row)[0] > tolerance)
+
+
+def test_wins_somewhere_falls_back_to_the_program_for_a_sliver(monkeypatch: pytest.MonkeyPatch) -> None:
+    # two rows cross at P(second) = 0.3 with risk 0.3; a constant row 1e-6 below wins only on a sliver there
+    c = 0.3 / 0.7
+    sliver = np.array([[0.0, 1.0], [0.3 - 1e-6, 0.3 - 1e-6], [c, 0.0]])
+    touching = np.array([[0.0, 1.0], [0.3, 0.3], [c, 0.0]])  # only ties at the crossing
+    programs: list[int] = []
+
+    def counted(loss: np.ndarray, row: int) -> tuple[float, np.ndarray]:
+        programs.append(row)
+        return winning_margin(loss, row)
+
+    monkeypatch.setattr(reach, "winning_margin", counted)
+    assert reach.wins_somewhere(sliver, 1, margin_tolerance(sliver))
+    assert not reach.wins_somewhere(touching, 1, margin_tolerance(touching))
+    assert programs == [1, 1]  # no witness point hit the sliver: the program answered both times
 
 
 @PROPERTY_SETTINGS
