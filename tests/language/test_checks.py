@@ -176,8 +176,8 @@ def test_a_failing_reachability_program_is_a_located_error(monkeypatch: pytest.M
 
     monkeypatch.setattr(reach, "linprog", failing)
     text = (FIXTURES / "every_action_is_reachable.yaml").read_text(encoding="utf-8")
-    policy_text = yaml.safe_load(text)[0]["policy"]
+    policy_text = yaml.safe_load(text)[1]["policy"]  # `hedge` wins at no witness posterior: the program must run
     report = check_document(parse_source(policy_text, "p.yaml"))
     (diagnostic,) = [d for d in report.diagnostics if d.code == "loss-not-analysable"]
-    assert (diagnostic.file, diagnostic.line, diagnostic.severity) == ("p.yaml", 5, Severity.ERROR)  # the loss: key
+    assert (diagnostic.file, diagnostic.line, diagnostic.severity) == ("p.yaml", 6, Severity.ERROR)  # the loss: key
     assert "numerical trouble" in diagnostic.message
