@@ -31,8 +31,13 @@ from pathlib import Path as FilePath
 from typing import Any
 
 import yaml
+from yaml.composer import Composer
 from yaml.events import AliasEvent, CollectionStartEvent, ScalarEvent
 from yaml.nodes import MappingNode, Node, ScalarNode, SequenceNode
+from yaml.parser import Parser
+from yaml.reader import Reader
+from yaml.resolver import Resolver
+from yaml.scanner import Scanner
 
 from policyc.language.diagnostics import Diagnostic, Path, PolicySourceError, Position, Severity
 
@@ -48,12 +53,27 @@ __all__ = [
 
 MAX_POLICY_BYTES = 1 << 20  # a policy is a reviewed text file, never megabytes
 MAX_NESTING = 32  # a policy nests four or five levels; the limit keeps composing far from Python's recursion limit
-MAX_NODES = 20_000  # keys, values and list items: a 100-class, 100-action loss matrix fits; parsing stays under ~1 s
+MAX_NODES = 20_000  # keys, values and list items: a 100-class, 100-action loss matrix fits; parsing stays ~0.2 s
 MAX_INTEGER = 1 << 53  # every integer up to 2**53 is exact as a float, so a number never changes silently
 
 # What YAML allows in a stream (YAML 1.1 §5.1, as PyYAML's reader checks it); anything else is refused by us,
 # with a position, before the parser sees it.
 _NOT_PRINTABLE = re.compile("[^\x09\x0a\x0d\x20-\x7e\x85\xa0-\ud7ff\ue000-\ufffd\U00010000-\U0010ffff]")
+
+
+class _PythonEventParser(Reader, Scanner, Parser):  # type: ignore[misc]  # PyYAML ships no types
+    """PyYAML's pure-Python events, for an installation without libyaml."""
+
+    def __init__(self, stream: str) -> None:
+        Reader.__init__(self, stream)
+        Scanner.__init__(self)
+        Parser.__init__(self)
+
+
+try:
+    from yaml._yaml import CParser as _FastEventParser
+except ImportError:  # PyYAML built without libyaml
+    _FastEventParser = _PythonEventParser
 
 _NULL = re.compile(r"^(?:~|null|Null|NULL|)$")
 _BOOL = re.compile(r"^(?:true|True|TRUE|false|False|FALSE)$")
@@ -97,11 +117,16 @@ class SourceDocument:
         return diagnostic.located(self.name, self.positions, self.key_positions)
 
 
-class _StrictLoader(yaml.SafeLoader):  # type: ignore[misc]  # PyYAML ships no types
-    """Refuses anchors, aliases, explicit tags, deep nesting and too many nodes while composing."""
+class _StrictComposer(Composer, Resolver):  # type: ignore[misc]  # PyYAML ships no types
+    """Refuses anchors, aliases, explicit tags, deep nesting and too many nodes while composing.
 
-    def __init__(self, stream: str) -> None:
-        super().__init__(stream)
+    Mixed with an event parser below: libyaml's where PyYAML was built with it (about ten times faster),
+    the pure-Python one otherwise; the tests run both.
+    """
+
+    def __init__(self) -> None:
+        Composer.__init__(self)
+        Resolver.__init__(self)
         self._depth = 0
         self._nodes = 0
 
@@ -140,6 +165,17 @@ class _StrictLoader(yaml.SafeLoader):  # type: ignore[misc]  # PyYAML ships no t
             if event.tag not in (None, "!"):
                 raise _Refusal("yaml-tag", f"explicit tag {event.tag!r} is not allowed in a policy", event.start_mark)
         return super().compose_node(parent, index)
+
+
+def _strict_loader(event_parser: Any) -> type:
+    def __init__(self: Any, stream: str) -> None:
+        event_parser.__init__(self, stream)
+        _StrictComposer.__init__(self)
+
+    return type("_StrictLoader", (_StrictComposer, event_parser), {"__init__": __init__})
+
+
+_StrictLoader = _strict_loader(_FastEventParser)
 
 
 class _Refusal(Exception):
@@ -231,7 +267,9 @@ def parse_source(text: str, name: str = "<policy>", base_dir: FilePath | None = 
     except yaml.MarkedYAMLError as exc:
         mark = exc.problem_mark or exc.context_mark
         message = " ".join(p for p in (exc.context, exc.problem) if p) or "invalid YAML"
-        raise _source_error(name, "yaml-syntax", message, _position(mark) if mark else None) from None
+        # libyaml stops at 1,000 levels while scanning ahead, before our composer counts MAX_NESTING
+        code = "nesting-too-deep" if "nesting depth" in message else "yaml-syntax"
+        raise _source_error(name, code, message, _position(mark) if mark else None) from None
     if root is None or (isinstance(root, ScalarNode) and root.value == "" and root.style is None):
         raise _source_error(name, "policy-empty", "the file holds no policy", Position(1, 1))
     if not isinstance(root, MappingNode):
@@ -284,7 +322,7 @@ class _Builder:
 
 def _scalar(node: ScalarNode) -> Any:
     text = node.value
-    if node.style is not None:  # quoted or block scalar: always text
+    if node.style:  # quoted or block scalar: always text (plain is None, or '' from libyaml)
         return text
     if _YAML11_BOOL.match(text):
         raise _Refusal(

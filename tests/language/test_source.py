@@ -9,6 +9,7 @@ from pathlib import Path
 
 import pytest
 
+from policyc.language import source
 from policyc.language.diagnostics import Diagnostic, PolicySourceError, Position, Severity
 from policyc.language.source import (
     MAX_INTEGER,
@@ -19,6 +20,15 @@ from policyc.language.source import (
     load_source,
     parse_source,
 )
+
+
+@pytest.fixture(autouse=True, params=["libyaml", "python"])
+def event_parser(request: pytest.FixtureRequest, monkeypatch: pytest.MonkeyPatch) -> None:
+    """Every test runs with libyaml's events (where PyYAML has them) and with the pure-Python ones."""
+    if request.param == "python":
+        monkeypatch.setattr(source, "_StrictLoader", source._strict_loader(source._PythonEventParser))
+    elif source._FastEventParser is source._PythonEventParser:
+        pytest.skip("PyYAML was built without libyaml")
 
 
 def refusal(text: str, name: str = "p.yaml") -> Diagnostic:
@@ -107,10 +117,17 @@ def test_complex_key_is_refused() -> None:
 
 
 def test_nesting_beyond_the_limit_is_refused_where_it_starts() -> None:
-    # ~1,000 levels of brackets ended in RecursionError.
-    text = "policy: " + "[" * 3000 + "]" * 3000 + "\n"
+    text = "policy: " + "[" * 999 + "]" * 999 + "\n"
     # the root mapping is level 1 and the first bracket level 2, so bracket number MAX_NESTING is one too deep
     assert where(refusal(text)) == ("nesting-too-deep", 1, 9 + MAX_NESTING - 1)
+
+
+@pytest.mark.parametrize("opening", ["[", "{a: "])
+def test_thousands_of_levels_are_refused_as_too_deep(opening: str) -> None:
+    # ~1,000 levels of brackets ended in RecursionError; libyaml's scanner stops at 1,000 levels on its own.
+    closing = "]" if opening == "[" else "}"
+    diagnostic = refusal("policy: " + opening * 3000 + "1" + closing * 3000 + "\n")
+    assert diagnostic.code == "nesting-too-deep" and diagnostic.line == 1
 
 
 def test_nesting_at_the_limit_is_read() -> None:
