@@ -10,7 +10,7 @@ from __future__ import annotations
 
 from .artefact import FORMAT_NAME, FORMAT_VERSION
 from .errors import ArtefactError, InputError, PolicycError
-from .rule import REASONS, Explanation, Rule, load_rule
+from .rule import REASONS, Explanation, Rule, load_rule, rule_from_bytes
 
 __all__ = [
     "FORMAT_NAME",
@@ -22,4 +22,5 @@ __all__ = [
     "PolicycError",
     "Rule",
     "load_rule",
+    "rule_from_bytes",
 ]

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import os
+import stat
 from collections.abc import Iterator, Mapping
 from contextlib import contextmanager
 from dataclasses import dataclass
@@ -12,10 +13,13 @@ from typing import Any
 import numpy as np
 
 from . import inputs, kernel
-from .artefact import decode_rule
+from .artefact import MAX_RULE_BYTES, decode_rule
 from .errors import ArtefactError, InputError
 
-__all__ = ["REASONS", "Explanation", "Rule", "load_rule"]
+__all__ = ["REASONS", "Explanation", "Rule", "load_rule", "rule_from_bytes"]
+
+_MAY_HOLD_MINUS_INFINITY = frozenset({"log_priors", "log_trained_priors"})
+"""Logarithms of probabilities: ln 0 = -inf for a class whose prior is zero. Every other array is finite."""
 
 _REQUIRED = {
     "gaussian": ("centre", "whitening", "whitened_means", "log_normalisers"),
@@ -63,17 +67,22 @@ class Rule:
             frozen[name] = copy
         self._params = frozen
         self.params: Mapping[str, np.ndarray] = MappingProxyType(frozen)
-        self.classes: tuple[str, ...] = tuple(manifest["classes"])
-        self.actions: tuple[str, ...] = tuple(manifest["actions"])
-        self.features: tuple[str, ...] = tuple(manifest["features"])
+        self.classes: tuple[str, ...] = _names(manifest, "classes", origin)
+        self.actions: tuple[str, ...] = _names(manifest, "actions", origin)
+        self.features: tuple[str, ...] = _names(manifest, "features", origin)
         self.reject_action: str | None = manifest.get("reject_action")
-        self.evidence: str = manifest["evidence"]["kind"]
-        self.invalid_input: str = manifest["invalid_input"]
+        evidence = manifest.get("evidence")
+        self.evidence: str = evidence.get("kind") if isinstance(evidence, Mapping) else None  # type: ignore[assignment]
+        self.invalid_input: str = manifest.get("invalid_input")  # type: ignore[assignment]
         self._validate(origin)
 
     def _validate(self, origin: str) -> None:
-        if self.evidence not in _REQUIRED:
-            raise ArtefactError(f"{origin}: manifest field 'evidence.kind' is {self.evidence!r}, unknown here")
+        if not isinstance(self.evidence, str) or self.evidence not in _REQUIRED:
+            raise ArtefactError(f"{origin}: manifest field 'evidence.kind' is {self.evidence!r:.70}, unknown here")
+        if self.invalid_input not in ("reject", "error"):
+            raise ArtefactError(f"{origin}: manifest field 'invalid_input' is {self.invalid_input!r:.70}")
+        if self.reject_action is not None and self.reject_action != self.actions[-1]:
+            raise ArtefactError(f"{origin}: manifest field 'reject_action' must name the last action")
         missing = [n for n in ("log_priors", "loss", *_REQUIRED[self.evidence]) if n not in self.params]
         if missing:
             raise ArtefactError(f"{origin}: arrays {missing} are missing for evidence {self.evidence!r}")
@@ -93,6 +102,20 @@ class Rule:
                 raise ArtefactError(f"{origin}: array {name!r} has shape {self.params[name].shape}, expected {shape}")
         if self.invalid_input == "reject" and self.reject_action is None:
             raise ArtefactError(f"{origin}: manifest field 'invalid_input' is 'reject' but there is no reject action")
+        self._validate_values(origin)
+
+    def _validate_values(self, origin: str) -> None:
+        """Refuse NaN and infinite parameters: a hash an attacker recomputed must not make a rule decide on NaN."""
+        for name, array in self.params.items():
+            minus_infinity_allowed = name in _MAY_HOLD_MINUS_INFINITY
+            if (
+                np.isnan(array).any()
+                or np.isposinf(array).any()
+                or (np.isneginf(array).any() and not minus_infinity_allowed)
+            ):
+                raise ArtefactError(f"{origin}: array {name!r} holds NaN or infinite values")
+        if not np.isfinite(self.params["log_priors"]).any():
+            raise ArtefactError(f"{origin}: array 'log_priors' gives every class a prior of zero")
 
     def __repr__(self) -> str:
         return (
@@ -193,15 +216,38 @@ def _input_refusals() -> Iterator[None]:
 
 
 def load_rule(path: str | os.PathLike[str]) -> Rule:
-    """Load and verify an artefact; raise ArtefactError (a ValueError) naming what failed."""
+    """Load and verify an artefact; raise ArtefactError (a ValueError) naming what failed.
+
+    Only a regular file is read (a FIFO or a device is refused before it is read from), and no more than
+    ``MAX_RULE_BYTES`` of it.
+    """
     origin = os.fspath(path)
     try:
-        with open(path, "rb") as handle:
-            data = handle.read()
+        descriptor = os.open(path, os.O_RDONLY | getattr(os, "O_NONBLOCK", 0))  # a FIFO opens without blocking
     except OSError as exc:
-        raise ArtefactError(f"{origin}: cannot read: {exc.strerror}") from None
-    manifest, params = decode_rule(data, origin)
+        raise ArtefactError(f"{origin}: cannot read: {exc.strerror or exc}") from None
     try:
-        return Rule(manifest, params, origin)
-    except KeyError as exc:
-        raise ArtefactError(f"{origin}: manifest field {exc.args[0]!r} is missing") from None
+        if not stat.S_ISREG(os.fstat(descriptor).st_mode):
+            raise ArtefactError(f"{origin}: not a regular file")
+        with os.fdopen(descriptor, "rb", closefd=False) as handle:
+            data = handle.read(MAX_RULE_BYTES + 1)
+    except OSError as exc:
+        raise ArtefactError(f"{origin}: cannot read: {exc.strerror or exc}") from None
+    finally:
+        os.close(descriptor)
+    return rule_from_bytes(data, origin)
+
+
+def rule_from_bytes(data: bytes, origin: str = "<rule bytes>") -> Rule:
+    """Verify an artefact's bytes (received over a network, or from a store) and return its Rule."""
+    manifest, params = decode_rule(data, origin)
+    return Rule(manifest, params, origin)
+
+
+def _names(manifest: Mapping[str, Any], field: str, origin: str) -> tuple[str, ...]:
+    names = manifest.get(field)
+    if not isinstance(names, list | tuple) or not names or not all(isinstance(n, str) and n for n in names):
+        raise ArtefactError(f"{origin}: manifest field {field!r} must be a non-empty list of names")
+    if len(set(names)) != len(names):
+        raise ArtefactError(f"{origin}: manifest field {field!r} repeats a name")
+    return tuple(names)

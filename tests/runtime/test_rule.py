@@ -29,7 +29,7 @@ from helpers import (
 from policyc.compiler import write_artefact
 from policyc.compiler.build import compile_policy
 from policyc.runtime import FORMAT_VERSION, ArtefactError, InputError, Rule, load_rule
-from policyc.runtime.artefact import content_hash
+from policyc.runtime.artefact import content_hash, pack_members
 
 # --- fixtures and artefact surgery ------------------------------------------------------------------
 
@@ -57,12 +57,8 @@ def members(data: bytes) -> dict[str, bytes]:
 
 
 def rezip(contents: dict[str, bytes]) -> bytes:
-    """A fresh, internally consistent ZIP (valid CRCs) holding ``contents``."""
-    output = io.BytesIO()
-    with zipfile.ZipFile(output, "w", compression=zipfile.ZIP_STORED) as archive:
-        for name, data in contents.items():
-            archive.writestr(name, data)
-    return output.getvalue()
+    """A fresh ZIP holding ``contents``, packed exactly as the writer packs (valid CRCs, canonical headers)."""
+    return pack_members(contents)
 
 
 def canonical(manifest: dict[str, Any]) -> bytes:
@@ -190,7 +186,7 @@ def test_unreadable_and_non_archive_files_are_refused(tmp_path: Path) -> None:
         load_rule(tmp_path / "absent.rule")
     junk = tmp_path / "junk.rule"
     junk.write_bytes(b"policy: not a rule\n")
-    with pytest.raises(ArtefactError, match="not a ZIP"):
+    with pytest.raises(ArtefactError, match="not a readable ZIP"):
         load_rule(junk)
 
 
