@@ -4,9 +4,7 @@ from __future__ import annotations
 
 import io
 import json
-import threading
 import zipfile
-from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 from typing import Any
 
@@ -376,25 +374,6 @@ def test_rule_copies_the_arrays_it_is_built_from() -> None:
     loss[0, 1] = 100.0
     assert rule.params["loss"][0, 1] == 1.0
     assert rule.decide(np.array([[0.0, 1.0]])).tolist() == [1]
-
-
-def test_concurrent_decisions_match_serial(packhouse: Rule, incoming: np.ndarray) -> None:
-    rng = np.random.default_rng(3)
-    # more rows than one kernel chunk, so threads interleave inside the chunk loop
-    X = incoming[rng.integers(0, incoming.shape[0], 10_000)] * rng.uniform(0.9, 1.1, (10_000, 4))
-    expected_decisions = packhouse.decide(X)
-    expected_posteriors = packhouse.posteriors(X)
-    barrier = threading.Barrier(6)
-
-    def work(_: int) -> tuple[np.ndarray, np.ndarray]:
-        barrier.wait()
-        return packhouse.decide(X), packhouse.posteriors(X)
-
-    with ThreadPoolExecutor(max_workers=6) as pool:
-        results = list(pool.map(work, range(6)))
-    for decisions, posteriors in results:
-        assert np.array_equal(decisions, expected_decisions)
-        assert np.array_equal(posteriors, expected_posteriors)
 
 
 def tie_rule(actions: list[str], loss: np.ndarray, reject_cost: float | None = None) -> Rule:
