@@ -71,26 +71,79 @@ def main() -> None:
     pass
 
 
+# --- options shared by the commands: one spelling and one definition each ------------------------
+
+_QUIET_KEY = "policyc.quiet"
+FORMATS = {
+    "text": "text for a terminal",
+    "markdown": "markdown for a pull-request comment",
+    "json": "json for tools (its JSON Schema is in schemas/; errors too are JSON then, on standard error)",
+    "yaml": "yaml for pasting into a policy",
+}
+
+
 def _remember_format(ctx: click.Context, param: click.Parameter, value: str) -> str:
     """Errors are presented in the report's format: JSON on standard error when tools read the output."""
     ctx.meta[_FORMAT_KEY] = value
     return value
 
 
-FORMAT_OPTION = click.option(
-    "--format",
-    "output_format",
-    type=click.Choice(["text", "json"]),
-    default="text",
-    show_default=True,
-    callback=_remember_format,
-    help="text: one line per diagnostic; json: a list of diagnostic objects.",
+def format_option(*formats: str) -> Callable[[Callable[..., Any]], Callable[..., Any]]:
+    """``--format``: the report's form, the same option on every command that prints a report."""
+    return click.option(
+        "--format",
+        "output_format",
+        type=click.Choice(formats),
+        default="text",
+        show_default=True,
+        callback=_remember_format,
+        help="; ".join(FORMATS[name] for name in formats) + ".",
+    )
+
+
+def label_option(help: str, required: bool = False) -> Callable[[Callable[..., Any]], Callable[..., Any]]:
+    """``--label COL``: the column of true classes, the same spelling on every command that reads one."""
+    return click.option("--label", required=required, metavar="COL", help=help)
+
+
+REPORT_OUTPUT_OPTION = click.option(
+    "-o",
+    "--output",
+    "report_file",
+    type=click.Path(dir_okay=False, path_type=Path),
+    help="Write the report to this file instead of standard output.",
 )
+
+
+def _remember_quiet(ctx: click.Context, param: click.Parameter, value: bool) -> bool:
+    ctx.meta[_QUIET_KEY] = value
+    return value
+
+
+QUIET_OPTION = click.option(
+    "-q",
+    "--quiet",
+    is_flag=True,
+    expose_value=False,
+    callback=_remember_quiet,
+    help="No progress display (it shows only on a terminal anyway).",
+)
+
+
+def _emit_report(text: str, report_file: Path | None) -> None:
+    if report_file is None:
+        click.echo(text, nl=not text.endswith("\n"))
+        return
+    from policyc.files import write_bytes_atomically
+
+    write_bytes_atomically(report_file, text.encode("utf-8"))
+    click.echo(f"report -> {report_file}", err=True)
 
 
 @main.command(epilog=CAUTION)
 @click.argument("policies", nargs=-1, required=True, type=click.Path(dir_okay=False, path_type=Path))
-@FORMAT_OPTION
+@format_option("text", "json")
+@REPORT_OUTPUT_OPTION
 @click.option("--strict", is_flag=True, help="Exit 1 on warnings too.")
 @click.option("--show", is_flag=True, help="Also print the loss matrix and where each action wins.")
 @click.option(
@@ -99,7 +152,14 @@ FORMAT_OPTION = click.option(
     default=None,
     help="Print the offending line with a caret (default: on a terminal).",
 )
-def check(policies: tuple[Path, ...], output_format: str, strict: bool, show: bool, show_source: bool | None) -> None:
+def check(
+    policies: tuple[Path, ...],
+    output_format: str,
+    report_file: Path | None,
+    strict: bool,
+    show: bool,
+    show_source: bool | None,
+) -> None:
     """Validate POLICY files and analyse their consistency.
 
     Exit 0 when clean or warnings only, 1 on errors (with --strict, on warnings too), 2 on usage errors.
@@ -110,31 +170,30 @@ def check(policies: tuple[Path, ...], output_format: str, strict: bool, show: bo
     reports = [check_file(path) for path in policies]
     diagnostics = [d for report in reports for d in report.diagnostics]
     if output_format == "json":
-        click.echo(render_json(diagnostics))
+        _emit_report(render_json(diagnostics), report_file)
     else:
-        source = sys.stdout.isatty() if show_source is None else show_source
-        for report in reports:
-            _echo_report(report, source, show)
+        source = report_file is None and sys.stdout.isatty() if show_source is None else show_source
+        _emit_report("\n".join(_check_text(report, source, show) for report in reports), report_file)
     failed = any(r.has_errors or (strict and r.has_warnings) for r in reports)
     sys.exit(1 if failed else 0)
 
 
-def _echo_report(report: CheckReport, show_source: bool, show: bool) -> None:
+def _check_text(report: CheckReport, show_source: bool, show: bool) -> str:
     from policyc.language.diagnostics import render_text
 
     lines = {report.name: report.source_lines} if show_source else {}
-    if report.diagnostics:
-        click.echo(render_text(report.diagnostics, lines, show_source))
+    out = [render_text(report.diagnostics, lines, show_source)] if report.diagnostics else []
     counts = {s: sum(d.severity.value == s for d in report.diagnostics) for s in ("error", "warning", "info")}
     verdict = "errors" if counts["error"] else "ok"
-    click.echo(
+    out.append(
         f"{report.name}: {verdict} ({counts['error']} errors, {counts['warning']} warnings, {counts['info']} notes)"
     )
     if show and report.policy is not None:
-        _echo_policy_tables(report)
+        out.extend(_policy_tables(report))
+    return "\n".join(out)
 
 
-def _echo_policy_tables(report: CheckReport) -> None:
+def _policy_tables(report: CheckReport) -> list[str]:
     from policyc.geometry.reach import ReachabilityError
     from policyc.language.checks import action_regions
     from policyc.render import format_matrix
@@ -144,27 +203,28 @@ def _echo_policy_tables(report: CheckReport) -> None:
     try:
         regions = action_regions(policy)
     except ReachabilityError:  # already reported by check as loss-not-analysable
-        return
+        return []
     if regions is None:
-        return
+        return []
     unit = f" ({policy.loss_unit})" if policy.loss_unit else ""
-    click.echo(
+    out = [
         f"\nloss{unit}, loss[action][true class]:"
         if policy.loss is not None
         else f"\ngain{unit} as stated, gain[action][true class]:"
-    )
+    ]
     sign = 1.0 if policy.loss is not None else -1.0
-    click.echo(format_matrix(sign * policy.loss_matrix(), policy.actions, policy.classes, "action", "true class"))
+    out.append(format_matrix(sign * policy.loss_matrix(), policy.actions, policy.classes, "action", "true class"))
     if policy.reject is not None:
         value = policy.reject.cost if policy.reject.cost is not None else policy.reject.gain
-        click.echo(
+        out.append(
             f"reject: {policy.reject.action} at {'cost' if policy.reject.cost is not None else 'gain'} {value:g}"
         )
-    click.echo("\nwhere each choice wins (example posterior at the largest margin):")
+    out.append("\nwhere each choice wins (example posterior at the largest margin):")
     for region in regions:
         posterior = ", ".join(f"{c}={p:.3f}" for c, p in zip(policy.classes, region.example_posterior, strict=True))
         status = f"margin {region.margin:.4g} at ({posterior})" if region.reachable else "never chosen"
-        click.echo(f"  {region.name}: {status}")
+        out.append(f"  {region.name}: {status}")
+    return out
 
 
 @main.command()
@@ -201,8 +261,8 @@ class _ProgressDisplay:
 
 @contextmanager
 def _progress(label: str) -> Iterator[_ProgressDisplay | None]:
-    """A progress display on a terminal; nothing in CI logs or pipes."""
-    if not sys.stderr.isatty():
+    """A progress display on a terminal; nothing in CI logs or pipes, nor with --quiet."""
+    if not sys.stderr.isatty() or click.get_current_context().meta.get(_QUIET_KEY):
         yield None
         return
     display = _ProgressDisplay(label)
@@ -228,6 +288,7 @@ def _progress(label: str) -> Iterator[_ProgressDisplay | None]:
     type=click.Path(dir_okay=False, path_type=Path),
     help="Also write a standalone NumPy module with the same decisions.",
 )
+@QUIET_OPTION
 def compile_command(policy: Path, rule_file: Path, module_file: Path | None) -> None:
     """Check POLICY, fit its evidence model and write the frozen rule."""
     from policyc.compiler import compile_policy, write_artefact, write_module
@@ -255,12 +316,15 @@ def compile_command(policy: Path, rule_file: Path, module_file: Path | None) -> 
     help="Output file, CSV or Parquet by its suffix.",
 )
 @click.option("--explain", is_flag=True, help="Also write posteriors, risks, runner-up action and margin.")
+@QUIET_OPTION
 def decide(rule_file: Path, data: Path, output: Path, explain: bool) -> None:
-    """Decide every row of DATA (CSV or Parquet) with RULE_FILE; add an `action` column."""
-    from policyc.batch import decide_file
-    from policyc.runtime import load_rule
+    """Decide every row of DATA (CSV or Parquet) with RULE_FILE; add an `action` column.
 
-    rule = load_rule(rule_file)
+    RULE_FILE may also be a policy file (checked and compiled in memory, nothing written).
+    """
+    from policyc.batch import decide_file
+
+    rule = _load_subject(rule_file).rule
     with _progress("deciding") as progress:
         counts = decide_file(rule, data, output, explain, progress)
     total = sum(counts.values())
@@ -270,25 +334,18 @@ def decide(rule_file: Path, data: Path, output: Path, explain: bool) -> None:
 
 @main.command(epilog=CAUTION)
 @click.argument("rule_file", type=click.Path(dir_okay=False, path_type=Path))
-@click.option(
-    "--format",
-    "output_format",
-    type=click.Choice(["text", "json"]),
-    default="text",
-    show_default=True,
-    callback=_remember_format,
-)
-def inspect(rule_file: Path, output_format: str) -> None:
-    """Show a rule's manifest, hashes, names, priors, loss table and (two classes) posterior thresholds."""
-    from policyc.review.inspect import inspection, render_inspection
-    from policyc.runtime import load_rule
+@format_option("text", "json")
+@REPORT_OUTPUT_OPTION
+def inspect(rule_file: Path, output_format: str, report_file: Path | None) -> None:
+    """Show a rule's manifest, hashes, names, priors, loss table and (two classes) posterior thresholds.
 
-    rule = load_rule(rule_file)
+    RULE_FILE may also be a policy file (checked and compiled in memory, nothing written).
+    """
+    from policyc.review.inspect import inspection, render_inspection
+
+    rule = _load_subject(rule_file).rule
     report = inspection(rule)
-    if output_format == "json":
-        click.echo(_json_dump(report))
-    else:
-        click.echo(render_inspection(rule, report))
+    _emit_report(_json_dump(report) if output_format == "json" else render_inspection(rule, report), report_file)
 
 
 def _json_dump(value: object) -> str:
@@ -298,22 +355,6 @@ def _json_dump(value: object) -> str:
 # --- diff, evaluate, plot -----------------------------------------------------------------------
 # Their modules are imported inside the commands: `policyc check` need not pay for scipy.stats or matplotlib.
 
-REPORT_FORMAT_OPTION = click.option(
-    "--format",
-    "output_format",
-    type=click.Choice(["text", "markdown", "json"]),
-    default="text",
-    show_default=True,
-    callback=_remember_format,
-    help="text for a terminal, markdown for a pull-request comment, json for tools (shape in the module docs).",
-)
-REPORT_OUTPUT_OPTION = click.option(
-    "-o",
-    "--output",
-    "report_file",
-    type=click.Path(dir_okay=False, path_type=Path),
-    help="Write the report to this file instead of standard output.",
-)
 CONFIDENCE_OPTION = click.option(
     "--confidence",
     type=click.FloatRange(0.5, 1.0, min_open=False, max_open=True),
@@ -344,16 +385,6 @@ def _load_subject(path: Path) -> LoadedRule:
     return loaded
 
 
-def _emit_report(text: str, report_file: Path | None) -> None:
-    if report_file is None:
-        click.echo(text, nl=not text.endswith("\n"))
-        return
-    from policyc.files import write_bytes_atomically
-
-    write_bytes_atomically(report_file, text.encode("utf-8"))
-    click.echo(f"report -> {report_file}", err=True)
-
-
 def _simplex_samples(ctx: click.Context, param: click.Parameter, value: int) -> int:
     if value < 256 or value & (value - 1):
         raise click.BadParameter("must be a power of two, at least 256 (e.g. 16384)", ctx, param)
@@ -368,8 +399,9 @@ def _simplex_samples(ctx: click.Context, param: click.Parameter, value: int) -> 
     type=click.Path(dir_okay=False, path_type=Path),
     help="Reference CSV/Parquet with the rules' feature columns: flip matrix, reject rates, expected risk.",
 )
-@click.option("--labels", "label", metavar="COL", help="Column of true classes in --data: empirical risk.")
-@REPORT_FORMAT_OPTION
+@label_option("Column of true classes in --data: empirical risk.")
+@click.option("--labels", "deprecated_labels", metavar="COL", hidden=True, help="Deprecated spelling of --label.")
+@format_option("text", "markdown", "json")
 @REPORT_OUTPUT_OPTION
 @click.option(
     "--max-flip-rate",
@@ -379,7 +411,7 @@ def _simplex_samples(ctx: click.Context, param: click.Parameter, value: int) -> 
 @click.option(
     "--max-risk-increase",
     type=float,
-    help="Gate: empirical risk increase new - old on --data with --labels, by the new loss matrix "
+    help="Gate: empirical risk increase new - old on --data with --label, by the new loss matrix "
     "(needs labels: under the new model alone the new rule's expected risk can never be higher).",
 )
 @click.option("--max-reject-rate", type=click.FloatRange(0.0, 1.0), help="Gate: the new rule's reject share on --data.")
@@ -404,6 +436,7 @@ def diff_command(
     new: Path,
     data: Path | None,
     label: str | None,
+    deprecated_labels: str | None,
     output_format: str,
     report_file: Path | None,
     max_flip_rate: float | None,
@@ -426,13 +459,18 @@ def diff_command(
     from policyc.review.diff.render import render_diff
 
     click.get_current_context().meta[_TROUBLE_KEY] = DIFF_TROUBLE_EXIT_CODE
+    if deprecated_labels is not None:
+        if label is not None:
+            raise click.UsageError("give --label only (--labels is its old spelling)")
+        click.echo("policyc: --labels is deprecated and will go; use --label", err=True)
+        label = deprecated_labels
     limits = GateLimits(max_flip_rate, max_risk_increase, max_reject_rate, max_simplex_change)
     if label is not None and data is None:
-        raise click.UsageError("--labels needs --data")
+        raise click.UsageError("--label needs --data")
     if limits.need_data and data is None:
         raise click.UsageError(f"--{', --'.join(limits.need_data)} need(s) --data")
     if max_risk_increase is not None and label is None:
-        raise click.UsageError("--max-risk-increase needs --labels")
+        raise click.UsageError("--max-risk-increase needs --label")
     before, after = _load_subject(old), _load_subject(new)
     report = diff(before, after, data, label, limits, simplex_samples, confidence, resamples, seed)
     _emit_report(render_diff(report, output_format), report_file)
@@ -445,8 +483,8 @@ def diff_command(
 @main.command(epilog=CAUTION)
 @click.argument("rule_file", type=click.Path(dir_okay=False, path_type=Path))
 @click.argument("labelled_data", type=click.Path(dir_okay=False, path_type=Path))
-@click.option("--label", required=True, metavar="COL", help="Column of true classes.")
-@REPORT_FORMAT_OPTION
+@label_option("Column of true classes.", required=True)
+@format_option("text", "markdown", "json")
 @REPORT_OUTPUT_OPTION
 @click.option(
     "--plot-curve",
@@ -565,7 +603,7 @@ def plot() -> None:
 @click.option(
     "--points", type=click.Path(dir_okay=False, path_type=Path), help="CSV/Parquet of labelled points to overlay."
 )
-@click.option("--label", metavar="COL", help="Class column of --points.")
+@label_option("Class column of --points.")
 @PICTURE_OPTION
 @SIZE_OPTION
 def plot_regions(
@@ -608,7 +646,7 @@ def plot_simplex(rule_file: Path, compare: Path | None, picture: Path, size: Fig
 @plot.command(name="curve")
 @click.argument("rule_file", metavar="RULE", type=click.Path(dir_okay=False, path_type=Path))
 @click.argument("data", type=click.Path(dir_okay=False, path_type=Path))
-@click.option("--label", required=True, metavar="COL", help="Column of true classes.")
+@label_option("Column of true classes.", required=True)
 @PICTURE_OPTION
 @SIZE_OPTION
 def plot_curve(rule_file: Path, data: Path, label: str, picture: Path, size: FigureSize) -> None:
@@ -624,48 +662,30 @@ def plot_curve(rule_file: Path, data: Path, label: str, picture: Path, size: Fig
 @main.command(epilog=CAUTION)
 @click.argument("rule_file", metavar="RULE", type=click.Path(dir_okay=False, path_type=Path))
 @click.argument("data", type=click.Path(dir_okay=False, path_type=Path))
-@click.option(
-    "--format",
-    "output_format",
-    type=click.Choice(["text", "json"]),
-    default="text",
-    show_default=True,
-    callback=_remember_format,
-)
+@format_option("text", "yaml", "json")
+@REPORT_OUTPUT_OPTION
 @click.option(
     "--confidence",
     type=click.FloatRange(0.5, 1.0, max_open=True),
     default=0.95,
     show_default=True,
-    help="Two-sided level of the Wald intervals.",
+    help="Two-sided level of the Wald intervals; the change test runs at level 1 - confidence.",
 )
-def priors(rule_file: Path, data: Path, output_format: str, confidence: float) -> None:
+@QUIET_OPTION
+def priors(rule_file: Path, data: Path, output_format: str, report_file: Path | None, confidence: float) -> None:
     """Estimate the class mix of unlabelled DATA with RULE (EM, Saerens et al. 2002).
 
-    Compares it with the rule's priors: a small p-value says the mix has changed and the
-    rule's decisions may no longer be the cheapest; review the priors before recompiling.
+    Compares it with the rule's priors and says whether the change test rejects "no change": if
+    it does, the rule's decisions may no longer be the cheapest; review the priors before
+    recompiling. The text report ends with the `priors:` block to paste into the policy
+    (--format yaml prints that block alone). RULE may also be a policy file (compiled in memory).
     """
-    from policyc.review.priors import estimate_priors
-    from policyc.runtime import load_rule
+    from policyc.review.priors import estimate_priors, render_priors
 
-    rule = load_rule(rule_file)
-    estimate = estimate_priors(rule, data, confidence)
-    if output_format == "json":
-        click.echo(_json_dump(estimate.to_json()))
-        return
-    level = f"{confidence:.0%}"
-    click.echo(f"{'class':<20} {'rule prior':>10} {'estimate':>10}   {level} interval")
-    for k, name in enumerate(rule.classes):
-        click.echo(
-            f"{name:<20} {estimate.rule_priors[k]:>10.4f} {estimate.priors[k]:>10.4f}   "
-            f"[{estimate.low[k]:.4f}, {estimate.high[k]:.4f}]"
-        )
-    state = "converged" if estimate.converged else "did NOT converge"
-    click.echo(f"{estimate.rows} rows; EM {state} in {estimate.iterations} iterations")
-    click.echo(
-        f"change statistic 2[l(new) - l(rule)] = {estimate.change_statistic:.4g}, "
-        f"p-value {estimate.p_value:.3g} (chi-squared, {len(rule.classes) - 1} degrees of freedom)"
-    )
+    rule = _load_subject(rule_file).rule
+    with _progress("estimating") as progress:
+        estimate = estimate_priors(rule, data, confidence, progress)
+    _emit_report(render_priors(estimate, output_format), report_file)
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -10,6 +10,7 @@ p̃_k(x) ∝ (π̃_k / π_k) p_k(x). EM alternates that correction (E-step) with
 
 from __future__ import annotations
 
+import json
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -17,10 +18,24 @@ from typing import Any
 import numpy as np
 from scipy import stats
 
-from policyc.evidence.io import DataError, read_feature_batches
+from policyc.evidence.base import Progress
+from policyc.evidence.io import DataError, count_rows, read_feature_batches
 from policyc.runtime import Rule
 
-__all__ = ["PriorEstimate", "estimate_priors", "estimate_priors_from_posteriors", "posteriors_of_file"]
+__all__ = [
+    "PASTE_DECIMALS",
+    "PriorEstimate",
+    "estimate_priors",
+    "estimate_priors_from_posteriors",
+    "posteriors_of_file",
+    "priors_block",
+    "render_priors",
+    "rounded_priors",
+    "verdict",
+]
+
+PASTE_DECIMALS = 4
+"""Decimals of the pasteable ``priors:`` block; the rounding remainder goes to the largest class so it sums to 1."""
 
 
 @dataclass(frozen=True)
@@ -128,19 +143,80 @@ def _wald_interval(ratios: np.ndarray, estimate: np.ndarray, confidence: float) 
     return np.clip(estimate - half_width, 0.0, 1.0), np.clip(estimate + half_width, 0.0, 1.0)
 
 
-def posteriors_of_file(rule: Rule, data: Path) -> np.ndarray:
+def posteriors_of_file(rule: Rule, data: Path, progress: Progress | None = None) -> np.ndarray:
     """The rule's posteriors for every valid row of ``data``, read in batches. Memory: 8·K bytes per row."""
     parts = []
+    total = count_rows(data) if progress is not None else None
     for batch in read_feature_batches(data, rule.features):
         assessment = rule.assess(batch.features)
         parts.append(assessment.posteriors[assessment.valid])
+        if progress is not None:
+            progress(batch.features.shape[0], total)
     if not parts or sum(p.shape[0] for p in parts) == 0:
         raise DataError(f"{data}: no valid rows to estimate priors from")
     return np.vstack(parts)
 
 
-def estimate_priors(rule: Rule, data: Path, confidence: float = 0.95) -> PriorEstimate:
+def estimate_priors(
+    rule: Rule, data: Path, confidence: float = 0.95, progress: Progress | None = None
+) -> PriorEstimate:
     rule_priors = np.array([rule.manifest["priors"][c] for c in rule.classes])
     return estimate_priors_from_posteriors(
-        posteriors_of_file(rule, data), rule_priors, rule.classes, confidence=confidence
+        posteriors_of_file(rule, data, progress), rule_priors, rule.classes, confidence=confidence
     )
+
+
+def rounded_priors(estimate: PriorEstimate) -> dict[str, float]:
+    """The estimate at ``PASTE_DECIMALS`` decimals, summing to 1 (the remainder added to the largest class)."""
+    rounded = np.round(estimate.priors, PASTE_DECIMALS)
+    largest = int(np.argmax(rounded))
+    rounded[largest] = round(1.0 - (rounded.sum() - rounded[largest]), PASTE_DECIMALS)
+    return {name: float(value) for name, value in zip(estimate.classes, rounded, strict=True)}
+
+
+def priors_block(estimate: PriorEstimate) -> str:
+    """The ``priors:`` mapping to paste into a policy (YAML, keys quoted where YAML would misread them)."""
+    import yaml
+
+    text: str = yaml.safe_dump({"priors": rounded_priors(estimate)}, sort_keys=False, default_flow_style=False)
+    return text
+
+
+def verdict(estimate: PriorEstimate) -> str:
+    """In words: does the change test reject "no change" at level 1 - confidence?"""
+    level = f"{1.0 - estimate.confidence:.3g}"
+    if estimate.p_value < 1.0 - estimate.confidence:
+        return (
+            f'The change test rejects "no change" at the {level} level (p = {estimate.p_value:.3g}): the class '
+            "mix of the data differs from the rule's priors; review them and recompile."
+        )
+    return (
+        f'The change test does not reject "no change" at the {level} level (p = {estimate.p_value:.3g}): the '
+        "data gives no evidence that the class mix differs from the rule's priors."
+    )
+
+
+def render_priors(estimate: PriorEstimate, output_format: str) -> str:
+    """text (table, verdict and the block to paste), yaml (the block alone, for tools) or json."""
+    if output_format == "yaml":
+        return priors_block(estimate)
+    if output_format == "json":
+        return json.dumps(estimate.to_json(), indent=2, sort_keys=True)
+    interval = f"{estimate.confidence:.0%} interval"
+    lines = [f"{'class':<20} {'rule prior':>10} {'estimate':>10}   {interval}"]
+    for k, name in enumerate(estimate.classes):
+        lines.append(
+            f"{name:<20} {estimate.rule_priors[k]:>10.4f} {estimate.priors[k]:>10.4f}   "
+            f"[{estimate.low[k]:.4f}, {estimate.high[k]:.4f}]"
+        )
+    state = "converged" if estimate.converged else "did NOT converge (the estimate is the last iterate)"
+    lines.append(f"{estimate.rows} rows; EM {state} in {estimate.iterations} iterations")
+    degrees = int(np.count_nonzero(estimate.rule_priors)) - 1
+    lines.append(
+        f"change statistic 2[l(new) - l(rule)] = {estimate.change_statistic:.4g}, "
+        f"p-value {estimate.p_value:.3g} (chi-squared, {degrees} degrees of freedom)"
+    )
+    lines.append(verdict(estimate))
+    lines.append(f"\nto use the estimate, paste into the policy (rounded to {PASTE_DECIMALS} decimals, sums to 1):")
+    lines.append(priors_block(estimate).rstrip("\n"))
+    return "\n".join(lines)

@@ -148,7 +148,7 @@ def test_a_policy_against_itself_changes_nothing() -> None:
         policy,
         "--data",
         PACKHOUSE / "holdout.csv",
-        "--labels",
+        "--label",
         "grade",
         "--format",
         "json",
@@ -352,12 +352,12 @@ def test_reject_risk_and_simplex_gates(packhouse_rules: tuple[Path, Path]) -> No
     assert (
         code == 1 and "gate max-simplex-change failed: share of the simplex" in err and "exceeds the limit 0.1" in err
     )
-    code, out, _ = run("diff", old, new, *data, "--labels", "grade", "--max-risk-increase", "0", "--format", "json")
+    code, out, _ = run("diff", old, new, *data, "--label", "grade", "--max-risk-increase", "0", "--format", "json")
     gate = json.loads(out)["gates"][0]
     assert gate["basis"].startswith("empirical risk increase") and gate["passed"] == (code == 0)
     # without labels the gate could never fail (the new rule minimises risk under its own model): usage error
     code, _, err = run("diff", old, new, *data, "--max-risk-increase", "-1", "--format", "json")
-    assert code == 2 and "--max-risk-increase needs --labels" in err
+    assert code == 2 and "--max-risk-increase needs --label" in err
 
 
 @pytest.mark.parametrize(
@@ -365,7 +365,7 @@ def test_reject_risk_and_simplex_gates(packhouse_rules: tuple[Path, Path]) -> No
     [
         ["--max-flip-rate", "0.1"],
         ["--max-reject-rate", "0.1"],
-        ["--labels", "grade"],
+        ["--label", "grade"],
         ["--simplex-samples", "1000"],
         ["--format", "yaml"],
     ],
@@ -391,7 +391,7 @@ def test_an_input_diff_cannot_use_exits_2_never_1(tmp_path: Path, trouble: str) 
     args = {
         "missing-rule": [tmp_path / "absent.rule", policy],
         "missing-data": [policy, policy, "--data", tmp_path / "absent.csv"],
-        "bad-label-column": [policy, policy, "--data", reference, "--labels", "no_such_column"],
+        "bad-label-column": [policy, policy, "--data", reference, "--label", "no_such_column"],
     }[trouble]
     code, out, err = run("diff", *args, "--max-flip-rate", "0") if trouble != "missing-rule" else run("diff", *args)
     assert code == 2 and out == "" and "Traceback" not in err and err.startswith("error: ")
@@ -428,7 +428,7 @@ CLAIMS_ARGS = [
     "claims-r2.yaml",
     "--data",
     "holdout.csv",
-    "--labels",
+    "--label",
     "outcome",
     "--max-flip-rate",
     "0.05",
@@ -459,7 +459,7 @@ def test_packhouse_markdown_snapshot(monkeypatch: pytest.MonkeyPatch) -> None:
         f"{folder}/policy-r4.yaml",
         "--data",
         f"{folder}/holdout.csv",
-        "--labels",
+        "--label",
         "grade",
         "--format",
         "markdown",

@@ -96,3 +96,46 @@ def test_priors_command_reports_the_documented_json(tmp_path: Path) -> None:
     assert text.exit_code == 0 and "p-value" in text.output
     missing = runner.invoke(main, ["priors", str(rule), str(tmp_path / "nope.csv")])
     assert missing.exit_code == 1 and "no such file" in missing.output
+
+
+def test_priors_says_the_verdict_in_words_and_prints_a_block_that_checks_clean(tmp_path: Path) -> None:
+    from click.testing import CliRunner
+
+    from policyc.cli import main
+    from policyc.language.checks import check_file
+
+    root = Path(__file__).resolve().parents[2] / "policies-demo" / "packhouse"
+    runner = CliRunner()
+    # a policy file is accepted as it is by diff, evaluate and plot (compiled in memory)
+    shifted = runner.invoke(main, ["priors", str(root / "policy.yaml"), str(root / "train.csv")])
+    assert shifted.exit_code == 0, shifted.output
+    assert 'The change test rejects "no change" at the 0.05 level' in shifted.stdout
+    block = runner.invoke(main, ["priors", str(root / "policy.yaml"), str(root / "train.csv"), "--format", "yaml"])
+    assert block.exit_code == 0 and block.stdout.startswith("priors:\n  premium: ")
+    assert block.stdout in shifted.stdout  # the text report ends with the same block
+    # pasted into the policy, the block passes check (it sums to 1 within the check's tolerance)
+    text = (root / "policy.yaml").read_text(encoding="utf-8")
+    start = text.index("priors:")
+    pasted = text[:start] + block.stdout + text[text.index("\n", start) + 1 :]
+    (tmp_path / "policy.yaml").write_text(pasted.replace("data: train.csv", f"data: {root / 'train.csv'}"), "utf-8")
+    assert [d.code for d in check_file(tmp_path / "policy.yaml").diagnostics if d.is_error] == []
+
+
+def test_priors_says_when_the_test_does_not_reject_no_change() -> None:
+    from policyc.review.priors import render_priors
+
+    uniform = np.full(3, 1 / 3)
+    posteriors, _ = _exact_posteriors(uniform, 2000, seed=1)
+    estimate = estimate_priors_from_posteriors(posteriors, uniform, CLASSES)
+    assert estimate.p_value > 0.05  # the mix did not change, and on this seeded draw the test agrees
+    assert 'does not reject "no change" at the 0.05 level' in render_priors(estimate, "text")
+
+
+def test_rounded_priors_sum_to_one_exactly_in_decimals() -> None:
+    from policyc.review.priors import rounded_priors
+
+    posteriors, _ = _exact_posteriors(np.array([1 / 3, 1 / 3, 1 / 3]), 3000, seed=2)
+    estimate = estimate_priors_from_posteriors(posteriors, np.array([0.2, 0.3, 0.5]), CLASSES)
+    rounded = rounded_priors(estimate)
+    assert round(sum(rounded.values()), 10) == 1.0
+    assert max(abs(rounded[c] - p) for c, p in zip(CLASSES, estimate.priors, strict=True)) < 2e-4
