@@ -392,36 +392,44 @@ def features_are_distinct(policy: Policy, context: CheckContext) -> Iterator[Dia
             yield _error("duplicate-feature", f"feature {name!r} is listed twice", ("evidence", "features", index))
 
 
-def training_data_is_present_and_pinned(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
-    if not isinstance(policy.evidence, GaussianEvidence):
-        return
-    training = policy.evidence.training
-    path = context.resolve(training.data)
-    where = ("evidence", "training", "data")
+def _data_file_is_present_and_pinned(
+    context: CheckContext, relative: str, pin: str | None, where: tuple[str, ...], what: str
+) -> Iterator[Diagnostic]:
+    """``what``-data-missing / -unpinned / -hash-mismatch for a data file stated at ``where`` (data, sha256)."""
+    path = context.resolve(relative)
     if not path.is_file():
         yield _error(
-            "training-data-missing",
-            f"training data {str(path)!r} does not exist",
-            where,
+            f"{what}-data-missing",
+            f"{what} data {str(path)!r} does not exist",
+            (*where, "data"),
             "paths are relative to the policy file",
         )
         return
     digest = file_sha256(path)
-    if training.sha256 is None:
+    if pin is None:
         yield Diagnostic(
-            "training-data-unpinned",
+            f"{what}-data-unpinned",
             Severity.INFO,
-            f"training data is not pinned; its sha256 is {digest}",
-            ("evidence", "training"),
+            f"{what} data is not pinned; its sha256 is {digest}",
+            where,
             "add sha256: so a changed file cannot silently change the rule",
         )
-    elif digest != training.sha256:
+    elif digest != pin:
         yield _error(
-            "training-data-hash-mismatch",
-            f"training data {training.data!r} has sha256 {digest}, not the pinned value",
-            ("evidence", "training", "sha256"),
+            f"{what}-data-hash-mismatch",
+            f"{what} data {relative!r} has sha256 {digest}, not the pinned value",
+            (*where, "sha256"),
             "if the new data is intended, review it and update the pin",
         )
+
+
+def training_data_is_present_and_pinned(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
+    if not isinstance(policy.evidence, GaussianEvidence):
+        return
+    training = policy.evidence.training
+    yield from _data_file_is_present_and_pinned(
+        context, training.data, training.sha256, ("evidence", "training"), "training"
+    )
 
 
 def evidence_columns_cover_classes(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
@@ -473,6 +481,140 @@ def posterior_evidence_is_documented(policy: Policy, context: CheckContext) -> I
         )
 
 
+# --- operating limits --------------------------------------------------------------------------
+
+
+def _decision_names(policy: Policy) -> tuple[str, ...]:
+    """The names a limit may use for an action: the actions, then the reject action."""
+    return (*policy.actions, *((policy.reject.action,) if policy.reject is not None else ()))
+
+
+def limits_name_actions_and_classes(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
+    if policy.limits is None:
+        return
+    names = _decision_names(policy)
+    for action in policy.limits.max_share:
+        if action not in names:
+            yield _error(
+                "limit-unknown-action",
+                f"max_share names {action!r}, which is not an action or the reject action",
+                ("limits", "max_share", action),
+            )
+    for name, recall in policy.limits.min_recall.items():
+        if name not in policy.classes:
+            yield _error(
+                "limit-unknown-class",
+                f"min_recall names {name!r}, which is not a class",
+                ("limits", "min_recall", name),
+            )
+        for index, action in enumerate(recall.actions):
+            if action not in names:
+                yield _error(
+                    "limit-unknown-action",
+                    f"min_recall[{name}] lists {action!r}, which is not an action or the reject action",
+                    ("limits", "min_recall", name, "actions", index),
+                )
+
+
+def limit_shares_are_proportions(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
+    if policy.limits is None:
+        return
+    shares = [(("limits", "max_share", a), s) for a, s in policy.limits.max_share.items()]
+    shares += [(("limits", "min_recall", c, "share"), r.share) for c, r in policy.limits.min_recall.items()]
+    for path, share in shares:
+        if not 0.0 <= share <= 1.0:
+            yield _error(
+                "limit-share-out-of-range", f"a share is {share:g}; it must lie in [0, 1]", path, "write 5% as 0.05"
+            )
+
+
+def recall_limits_have_labels(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
+    if policy.limits is not None and policy.limits.min_recall and policy.limits.label is None:
+        yield _error(
+            "limit-needs-label",
+            "a min_recall limit needs the true class of each reference row",
+            ("limits",),
+            "name the class column with label: COLUMN",
+        )
+
+
+def reference_data_is_present_and_pinned(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
+    if policy.limits is not None:
+        yield from _data_file_is_present_and_pinned(
+            context, policy.limits.data, policy.limits.sha256, ("limits",), "reference"
+        )
+
+
+def listed_actions_can_be_chosen(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
+    """A min_recall action is never chosen when another action beats it for every class and every
+    adjustment the limits can make raises the other action's losses no more than its own."""
+    loss = _complete_matrix(policy)
+    if loss is None or policy.limits is None:
+        return
+    names = _decision_names(policy)
+    raised = _raised_entries(policy, names)
+    for name, recall in policy.limits.min_recall.items():
+        for index, action in enumerate(recall.actions):
+            if action not in names:
+                continue
+            row = names.index(action)
+            for other in range(len(names)):
+                never_worse = np.all(loss[other] <= loss[row]) and (np.any(loss[other] < loss[row]) or other < row)
+                if other != row and never_worse and raised[other] <= raised[row]:
+                    yield _error(
+                        "limit-action-never-chosen",
+                        f"min_recall[{name}] lists {action!r}, which {names[other]!r} beats for every class "
+                        "whatever the limits' multipliers, so it is never chosen",
+                        ("limits", "min_recall", name, "actions", index),
+                        "list the actions that can catch the class",
+                    )
+                    break
+
+
+def _raised_entries(policy: Policy, names: Sequence[str]) -> list[set[tuple[str, str]]]:
+    """Per decision row, the (limit, class) entries a limit's multiplier adds to (class '*' for the whole row)."""
+    assert policy.limits is not None
+    raised: list[set[tuple[str, str]]] = [set() for _ in names]
+    for action in policy.limits.max_share:
+        if action in names:
+            raised[names.index(action)].add((f"max_share[{action}]", "*"))
+    for name, recall in policy.limits.min_recall.items():
+        for row, action in enumerate(names):
+            if action not in recall.actions:
+                raised[row].add((f"min_recall[{name}]", name))
+    return raised
+
+
+def limits_are_feasible_on_their_face(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
+    if policy.limits is None:
+        return
+    names = _decision_names(policy)
+    capped = policy.limits.max_share
+    for action, share in capped.items():
+        if share == 0.0:
+            yield _error(
+                "limit-infeasible",
+                f"max_share[{action}] is 0: no finite multiplier keeps every new row off {action!r}",
+                ("limits", "max_share", action),
+                "remove the action from the policy instead",
+            )
+    for name, recall in policy.limits.min_recall.items():
+        if recall.share == 1.0:
+            yield _error(
+                "limit-infeasible",
+                f"min_recall[{name}] is 1: no reference sample guarantees that every new {name!r} row is caught",
+                ("limits", "min_recall", name, "share"),
+                "state a share below 1, e.g. 0.99",
+            )
+    if all(name in capped for name in names) and sum(capped.values()) < 1.0:
+        yield _error(
+            "limit-infeasible",
+            f"max_share caps every action and sums to {sum(capped.values()):g} < 1, but every row receives one of them",
+            ("limits", "max_share"),
+            "raise a cap, or leave one action uncapped",
+        )
+
+
 RULES: tuple[Rule, ...] = (
     classes_are_distinct_and_at_least_two,
     actions_are_distinct,
@@ -489,6 +631,12 @@ RULES: tuple[Rule, ...] = (
     training_data_is_present_and_pinned,
     evidence_columns_cover_classes,
     posterior_evidence_is_documented,
+    limits_name_actions_and_classes,
+    limit_shares_are_proportions,
+    recall_limits_have_labels,
+    reference_data_is_present_and_pinned,
+    listed_actions_can_be_chosen,
+    limits_are_feasible_on_their_face,
 )
 
 

@@ -30,8 +30,10 @@ __all__ = [
     "Evidence",
     "GaussianEvidence",
     "LogLikelihoodEvidence",
+    "OperatingLimits",
     "Policy",
     "PosteriorEvidence",
+    "RecallLimit",
     "RejectOption",
     "TrainingData",
     "build_policy",
@@ -130,6 +132,28 @@ class RejectOption(_Strict):
         return self
 
 
+class RecallLimit(_Strict):
+    """Of the rows truly in a class, at least ``share`` must receive one of ``actions``."""
+
+    actions: tuple[Name, ...] = Field(min_length=1, description="actions that count as catching the class")
+    share: Finite = Field(description="the least share of the class's rows, in [0, 1]")
+
+
+class OperatingLimits(_Strict):
+    """Capacity and recall requirements, solved into the loss matrix on reference data at compile time."""
+
+    data: str = Field(description="CSV or Parquet rows like those the rule will decide, relative to the policy file")
+    label: Name | None = Field(default=None, description="column of true classes; needed by min_recall")
+    sha256: Sha256 | None = Field(default=None, description="pin the exact file content")
+    confidence: Annotated[float, Field(ge=0.5, lt=1.0)] = Field(
+        default=0.95, description="each limit holds on new data from the same source with at least this probability"
+    )
+    max_share: dict[Name, Finite] = Field(
+        default_factory=dict, description="action (the reject action included) -> the largest share of rows"
+    )
+    min_recall: dict[Name, RecallLimit] = Field(default_factory=dict, description="class -> actions and least share")
+
+
 class Policy(_Strict):
     """A decision policy: classes, priors, actions, a loss (or gain) matrix and evidence."""
 
@@ -145,6 +169,7 @@ class Policy(_Strict):
     reject: RejectOption | None = None
     invalid_input: Literal["reject", "error"] = "error"
     evidence: Evidence
+    limits: OperatingLimits | None = None
 
     @model_validator(mode="after")
     def _loss_or_gain(self) -> Policy:
