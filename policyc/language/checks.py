@@ -519,6 +519,7 @@ def limits_name_actions_and_classes(policy: Policy, context: CheckContext) -> It
 def limit_shares_are_proportions(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
     if policy.limits is None:
         return
+    shares: list[tuple[tuple[str | int, ...], float]]
     shares = [(("limits", "max_share", a), s) for a, s in policy.limits.max_share.items()]
     shares += [(("limits", "min_recall", c, "share"), r.share) for c, r in policy.limits.min_recall.items()]
     for path, share in shares:
