@@ -9,7 +9,14 @@ from typing import Any
 import numpy as np
 
 from policyc import __version__
-from policyc.compiler.manifest import RuleManifest
+from policyc.compiler.limits import (
+    LimitInfeasible,
+    SolvedLimits,
+    limits_from_policy,
+    read_reference,
+    solve_limits,
+)
+from policyc.compiler.manifest import LimitsRecord, RuleManifest
 from policyc.errors import DataError, FitProblem
 from policyc.evidence import FittedEvidence, Progress, fit_evidence
 from policyc.language.checks import load_checked_policy
@@ -50,7 +57,33 @@ def compile_policy(path: str | Path, progress: Progress | None = None) -> Compil
         ) from None
     _require_pinned_data_unchanged(document, policy, fitted)
     rule = rule_from_parts(policy, fitted, document.sha256)
+    if policy.limits is not None:
+        rule = rule_from_parts(policy, fitted, document.sha256, _solved_limits(document, policy, rule, progress))
     return CompiledPolicy(rule, policy, document, diagnostics)
+
+
+def _solved_limits(
+    document: SourceDocument, policy: Policy, unlimited: Rule, progress: Progress | None
+) -> SolvedLimits:
+    """Solve the limits on the reference data's posteriors under the unlimited rule (they do not depend on L)."""
+    assert policy.limits is not None
+    try:
+        sample = read_reference(unlimited, policy.limits, document.base_dir, progress)
+        limits = limits_from_policy(policy, unlimited.actions)
+        return solve_limits(_stated_loss(policy), limits, sample, policy.limits.confidence, policy.limits.label)
+    except DataError as error:
+        where: tuple[str | int, ...] = ("limits", "data")
+        raise CompileError(
+            [document.locate(Diagnostic("reference-data-unusable", Severity.ERROR, str(error), where))]
+        ) from None
+    except LimitInfeasible as infeasible:
+        hint = "relax a limit, lower confidence:, or add reference rows"
+        raise CompileError(
+            [
+                document.locate(Diagnostic("limit-infeasible", Severity.ERROR, infeasible.message, limit.path, hint))
+                for limit in infeasible.limits
+            ]
+        ) from None
 
 
 def _require_pinned_data_unchanged(document: SourceDocument, policy: Policy, fitted: FittedEvidence) -> None:
@@ -72,22 +105,30 @@ def _deployment_priors(policy: Policy, fitted: FittedEvidence) -> np.ndarray:
     return stated / stated.sum()  # the check allowed |Σ - 1| <= 1e-6; make it exact
 
 
-def rule_from_parts(policy: Policy, fitted: FittedEvidence, policy_sha256: str) -> Rule:
-    """Assemble the Rule: log priors, the loss matrix with the reject row last, evidence arrays, manifest."""
-    priors = _deployment_priors(policy, fitted)
+def _stated_loss(policy: Policy) -> np.ndarray:
+    """The loss matrix with the reject option as one more row of constant cost d, last."""
     loss = policy.loss_matrix()
-    actions = list(policy.actions)
     reject_cost = policy.reject_cost()
     if reject_cost is not None:
-        assert policy.reject is not None
         # the reject option as one more action of constant risk d: R(reject|x) = Σ_k d P(k|x) = d
         # (the kernel sets constant rows' risk to d exactly)
         loss = np.vstack([loss, np.full(len(policy.classes), reject_cost)])
-        actions.append(policy.reject.action)
+    return loss
+
+
+def rule_from_parts(
+    policy: Policy, fitted: FittedEvidence, policy_sha256: str, limits: SolvedLimits | None = None
+) -> Rule:
+    """Assemble the Rule: log priors, the loss matrix with the reject row last (L' when limits were solved),
+    evidence arrays, manifest."""
+    priors = _deployment_priors(policy, fitted)
+    actions = [*policy.actions, *([policy.reject.action] if policy.reject is not None else [])]
+    loss = limits.adjusted_loss if limits is not None else _stated_loss(policy)
     with np.errstate(divide="ignore"):
         log_priors = np.log(priors)
     params = {"log_priors": log_priors, "loss": loss, **fitted.params}
-    manifest = _manifest(policy, fitted, priors, actions, reject_cost, policy_sha256)
+    record = LimitsRecord(**limits.manifest_entry(actions, policy.classes)) if limits is not None else None
+    manifest = _manifest(policy, fitted, priors, actions, policy_sha256, record)
     # Round-trip through the artefact encoding: the in-memory rule is exactly the one a file holds.
     encoded_manifest, encoded_params = decode_rule(encode_rule(manifest, params), origin=policy.policy)
     return Rule(encoded_manifest, encoded_params, origin=policy.policy)
@@ -98,8 +139,8 @@ def _manifest(
     fitted: FittedEvidence,
     priors: np.ndarray,
     actions: list[str],
-    reject_cost: float | None,
     policy_sha256: str,
+    limits: LimitsRecord | None,
 ) -> dict[str, Any]:
     counts = fitted.training_counts
     manifest = RuleManifest(
@@ -111,7 +152,7 @@ def _manifest(
         classes=list(policy.classes),
         actions=actions,
         reject_action=policy.reject.action if policy.reject is not None else None,
-        reject_cost=reject_cost,
+        reject_cost=policy.reject_cost(),
         features=list(fitted.features),
         priors=dict(zip(policy.classes, priors.tolist(), strict=True)),
         priors_source="training" if policy.priors == "training" else "policy",
@@ -126,5 +167,8 @@ def _manifest(
         policy_sha256=policy_sha256,
         training_sha256=fitted.training_sha256,
         policyc_version=__version__,
+        limits=limits,
     )
-    return manifest.model_dump(mode="json", exclude_none=False, exclude={"arrays", "content_sha256"})
+    # a rule without limits keeps the manifest (and content hash) it had before limits existed
+    omitted = {"arrays", "content_sha256", *(() if limits is not None else ("limits",))}
+    return manifest.model_dump(mode="json", exclude_none=False, exclude=omitted)
