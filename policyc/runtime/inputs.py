@@ -50,7 +50,9 @@ def feature_matrix(X: object, features: tuple[str, ...]) -> np.ndarray:
 
 def is_record(X: object) -> bool:
     """Whether ``X`` is one record: a mapping whose values are all single values, not columns."""
-    return _table_kind(X) == "mapping" and all(np.ndim(value) == 0 for value in X.values())  # type: ignore[attr-defined]
+    mapping: Any = X
+    # keys(), since iterating a pandas Series gives its values
+    return _table_kind(X) == "mapping" and all(np.ndim(mapping[key]) == 0 for key in mapping.keys())  # noqa: SIM118
 
 
 def record_row(record: object, features: tuple[str, ...]) -> np.ndarray:
@@ -62,7 +64,7 @@ def record_row(record: object, features: tuple[str, ...]) -> np.ndarray:
         raise InputError(f"expected one record as a mapping of feature name to number, got {type(record).__name__}")
     fields: Any = record
     missing = [name for name in features if name not in fields]
-    unknown = [key for key in fields if key not in features]
+    unknown = [key for key in fields.keys() if key not in features]  # noqa: SIM118 (a Series iterates values)
     problems = [
         f"{what} {_listed(names)}"
         for what, names in (("missing feature(s)", missing), ("unknown field(s)", unknown))
@@ -83,7 +85,7 @@ def _table_kind(X: object) -> str | None:
         return "pandas"
     if hasattr(X, "columns") and hasattr(X, "to_series"):
         return "polars"
-    if hasattr(X, "keys") and hasattr(X, "values") and hasattr(X, "__getitem__"):
+    if hasattr(X, "keys") and hasattr(X, "__getitem__"):
         return "mapping"
     return None
 

@@ -16,7 +16,7 @@ import pandas as pd
 import polars as pl
 import pyarrow as pa
 import pytest
-from helpers import DEMOS, PACKHOUSE, read_csv_columns, standalone
+from helpers import CLAIMS, DEMOS, PACKHOUSE, read_csv_columns, standalone
 
 from policyc.compiler.build import compile_policy
 from policyc.runtime import REASONS, InputError, Rule
@@ -242,6 +242,17 @@ def test_explain_gives_a_reason_for_every_row(packhouse: Rule, incoming: np.ndar
     assert (explanation.risks[deferred, reject] < explanation.risks[deferred, :reject].min(axis=1)).all()
 
 
+def test_truncated_upstream_probabilities_are_deferred_with_reason_invalid() -> None:
+    # Probabilities cut to two decimals upstream: most rows no longer sum to one within the policy's tolerance.
+    claims = compile_policy(CLAIMS).rule
+    X = np.floor(read_csv_columns(DEMOS / "claims" / "holdout.csv", claims.features) * 100.0) / 100.0
+    off = np.abs(X.sum(axis=1) - 1.0) > float(claims.params["sum_tolerance"])
+    assert 0 < off.sum() < len(X)
+    explanation = claims.explain(X)
+    assert np.array_equal(explanation.reason == "invalid", off)
+    assert (explanation.action_name[off] == claims.reject_action).all()
+
+
 def test_explain_names_the_actions(packhouse: Rule, incoming: np.ndarray) -> None:
     X = incoming[:50].copy()
     X[7, 2] = np.inf
@@ -263,6 +274,15 @@ def test_explain_takes_one_record_like_decide_one(packhouse: Rule, incoming: np.
     assert packhouse.explain({name: [value] for name, value in record.items()}).action_name.tolist() == [
         packhouse.decide_one(record)
     ]
+
+
+def test_a_pandas_series_is_one_record(packhouse: Rule, incoming: np.ndarray) -> None:
+    record = pd.Series(incoming[5], index=list(packhouse.features))
+    expected = packhouse.decide_names(incoming[5:6]).tolist()
+    assert [packhouse.decide_one(record)] == expected  # type: ignore[arg-type]
+    assert packhouse.explain(record).action_name.tolist() == expected
+    with pytest.raises(InputError, match=r"unknown field\(s\) \['colour'\]"):
+        packhouse.explain(pd.concat([record, pd.Series([1.0], index=["colour"])]))
 
 
 def test_a_mapping_of_single_values_is_not_a_table_for_decide(packhouse: Rule, incoming: np.ndarray) -> None:
