@@ -1,44 +1,71 @@
-"""Decide over a CSV or Parquet file in batches; output keeps the input columns and adds the decision."""
+"""Decide over a CSV or Parquet file in batches; output keeps the input rows untouched and adds the decision."""
 
 from __future__ import annotations
 
-from collections.abc import Callable, Iterator
-from itertools import chain
+from collections.abc import Callable
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 import pyarrow as pa
 
-from policyc.evidence.io import (
-    DEFAULT_BATCH_ROWS,
-    DataError,
-    TableWriter,
-    batch_to_matrix,
-    count_rows,
-    read_ahead,
-    read_table_batches,
-)
-from policyc.runtime import Explanation, Rule, kernel
+from policyc.errors import DataError
+from policyc.evidence.io import DEFAULT_BATCH_ROWS, RowSource, count_rows, data_format, write_rows
+from policyc.runtime import REASONS, Explanation, Rule, kernel
 
-__all__ = ["assess_batch", "decide_file", "explain_columns"]
+__all__ = ["DecisionCounts", "assess_batch", "decide_file", "deferrals", "explain_columns"]
 
 
 def assess_batch(rule: Rule, features: np.ndarray, data: Path, first_row: int, whose: str = "") -> Explanation:
     """The rule's assessment of a batch of a file's rows; under ``invalid_input: error`` an invalid row
-    is a DataError naming its row in the file (rows counted from 1, the header not counted)."""
+    is a DataError naming its row in the file (rows counted from 1, the header not counted) and the
+    columns holding a missing or non-finite value there."""
     assessment = rule.assess(features)
     if rule.invalid_input == "error" and not assessment.valid.all():
-        raise DataError(f"{data}: {whose}{kernel.invalid_rows_message(assessment.valid, first_row)}")
+        message = kernel.invalid_rows_message(assessment.valid, first_row, prepared=features, features=rule.features)
+        raise DataError(f"{data}: {whose}{message}")
     return assessment
 
 
+def deferrals(rule: Rule, assessment: Explanation) -> dict[str, int]:
+    """Rows sent to the reject action, counted per reason (every reason of ``REASONS``, zero or not)."""
+    if rule.reject_action is None:
+        return {}
+    deferred = assessment.action == rule.actions.index(rule.reject_action)
+    return {reason: int((deferred & (assessment.reason == reason)).sum()) for reason in REASONS}
+
+
+@dataclass
+class DecisionCounts:
+    """Rows per action, and the rows sent to the reject action per reason (empty without a reject option)."""
+
+    actions: dict[str, int]
+    deferred: dict[str, int]
+    reject_action: str | None
+
+    @property
+    def rows(self) -> int:
+        return sum(self.actions.values())
+
+    def add(self, rule: Rule, assessment: Explanation) -> None:
+        for index, count in enumerate(np.bincount(assessment.action, minlength=len(rule.actions)).tolist()):
+            self.actions[rule.actions[index]] += count
+        for reason, count in deferrals(rule, assessment).items():
+            self.deferred[reason] += count
+
+    def summary(self) -> str:
+        """One line: rows per action with shares, then deferrals by reason."""
+        # share = rows with the action / all rows
+        text = ", ".join(f"{name} {n} ({n / self.rows:.1%})" for name, n in self.actions.items())
+        if self.reject_action is not None:
+            why = ", ".join(f"{reason} {n}" for reason, n in self.deferred.items())
+            text += f"; deferred to {self.reject_action}: {sum(self.deferred.values())} ({why})"
+        return text
+
+
 def explain_columns(rule: Rule) -> list[str]:
-    return [
-        *(f"posterior_{c}" for c in rule.classes),
-        *(f"risk_{a}" for a in rule.actions),
-        "runner_up",
-        "margin",
-    ]
+    """Names of the columns ``--explain`` adds after ``action``."""
+    return list(_added_schema(rule, explain=True).names[1:])
 
 
 def decide_file(
@@ -48,57 +75,51 @@ def decide_file(
     explain: bool = False,
     progress: Callable[[int, int | None], None] | None = None,
     batch_rows: int = DEFAULT_BATCH_ROWS,
-) -> dict[str, int]:
-    """Write ``output`` (format from its suffix) with the input columns plus ``action`` (and explanations).
+) -> DecisionCounts:
+    """Write ``output`` (format from its suffix) with the input rows untouched plus ``action`` (and explanations).
 
-    Returns the count of rows per action. Nothing is left at ``output`` on error.
+    A CSV output repeats a CSV input's bytes exactly and appends the new cells to each line; a Parquet input's
+    columns keep their types. Raises DataError (nothing is left at ``output``) when the data cannot be used,
+    when ``output`` is the input or a read-only file, or when the output cannot be written.
     """
-    decided = _decided_batches(rule, data, explain, batch_rows)
-    first = next(decided, None)
-    if first is None:
-        raise DataError(f"{data}: the file has no rows")
-    counts = np.zeros(len(rule.actions), dtype=np.int64)
-    total_rows = count_rows(data)
-    with TableWriter(output, first[0].schema).open() as write:
-        for batch, actions in chain([first], decided):
-            write(batch)
-            counts += np.bincount(actions, minlength=len(rule.actions))
-            if progress is not None:
-                progress(batch.num_rows, total_rows)
-    return dict(zip(rule.actions, counts.tolist(), strict=True))
-
-
-def _decided_batches(
-    rule: Rule, data: Path, explain: bool, batch_rows: int
-) -> Iterator[tuple[pa.RecordBatch, np.ndarray]]:
-    added = ["action", *(explain_columns(rule) if explain else [])]
-    first_row = 1
-    for batch in read_ahead(read_table_batches(data, None, batch_rows, numeric=rule.features)):
-        if first_row == 1:
-            _require_columns(rule, data, batch.schema.names, added)
-        features = batch_to_matrix(data, batch, rule.features, first_row)
-        assessment = assess_batch(rule, features, data, first_row)
-        yield _with_decisions(rule, batch, assessment, explain), assessment.action
-        first_row += batch.num_rows
-
-
-def _require_columns(rule: Rule, data: Path, names: list[str], added: list[str]) -> None:
-    missing = [f for f in rule.features if f not in names]
-    if missing:
-        raise DataError(f"{data}: missing feature column(s) {missing}")
-    clashes = [c for c in added if c in names]
+    source = RowSource(data, rule.features, csv_bytes=data_format(output) == "csv", batch_rows=batch_rows)
+    added = _added_schema(rule, explain)
+    clashes = [name for name in added.names if name in source.names]
     if clashes:
         raise DataError(f"{data}: column(s) {clashes} already exist; rename them before deciding")
+    counts = DecisionCounts(dict.fromkeys(rule.actions, 0), dict.fromkeys(REASONS, 0), rule.reject_action)
+    total_rows = count_rows(data)
+    try:
+        with write_rows(output, source, added) as write:
+            for rows in source.batches():
+                assessment = assess_batch(rule, rows.features, data, rows.first_row)
+                write(rows, _decision_columns(rule, assessment, added))
+                counts.add(rule, assessment)
+                if progress is not None:
+                    progress(rows.num_rows, total_rows)
+            if counts.rows == 0:
+                raise DataError(f"{data}: the file has no rows")
+    except (OSError, pa.ArrowException) as error:
+        reason = error.strerror if isinstance(error, OSError) and error.strerror else str(error)
+        raise DataError(f"cannot write {output}: {reason}") from None
+    return counts
 
 
-def _with_decisions(rule: Rule, batch: pa.RecordBatch, assessment: Explanation, explain: bool) -> pa.RecordBatch:
-    action_names = np.asarray(rule.actions, dtype=object)
-    columns = [*list(batch.columns), pa.array(action_names[assessment.action], type=pa.string())]
-    names = [*list(batch.schema.names), "action"]
+def _added_schema(rule: Rule, explain: bool) -> pa.Schema:
+    fields = [pa.field("action", pa.string())]
     if explain:
-        runner_names = [rule.actions[i] if i >= 0 else None for i in assessment.runner_up.tolist()]
+        fields += [pa.field(f"posterior_{c}", pa.float64()) for c in rule.classes]
+        fields += [pa.field(f"risk_{a}", pa.float64()) for a in rule.actions]
+        fields += [pa.field("runner_up", pa.string()), pa.field("margin", pa.float64())]
+        fields += [pa.field("reason", pa.string())]
+    return pa.schema(fields)
+
+
+def _decision_columns(rule: Rule, assessment: Explanation, schema: pa.Schema) -> pa.RecordBatch:
+    columns = [pa.array(assessment.action_name, type=pa.string())]
+    if len(schema) > 1:
         columns += [pa.array(assessment.posteriors[:, k]) for k in range(len(rule.classes))]
         columns += [pa.array(assessment.risks[:, a]) for a in range(len(rule.actions))]
-        columns += [pa.array(runner_names, type=pa.string()), pa.array(assessment.margin)]
-        names += explain_columns(rule)
-    return pa.RecordBatch.from_arrays(columns, names=names)
+        columns += [pa.array(assessment.runner_up_name, type=pa.string()), pa.array(assessment.margin)]
+        columns += [pa.array(assessment.reason, type=pa.string())]
+    return pa.RecordBatch.from_arrays(columns, schema=schema)

@@ -315,7 +315,11 @@ def compile_command(policy: Path, rule_file: Path, module_file: Path | None) -> 
     type=click.Path(dir_okay=False, path_type=Path),
     help="Output file, CSV or Parquet by its suffix.",
 )
-@click.option("--explain", is_flag=True, help="Also write posteriors, risks, runner-up action and margin.")
+@click.option(
+    "--explain",
+    is_flag=True,
+    help="Also write posteriors, risks, runner-up action, margin and reason (min-risk, invalid).",
+)
 @QUIET_OPTION
 def decide(rule_file: Path, data: Path, output: Path, explain: bool) -> None:
     """Decide every row of DATA (CSV or Parquet) with RULE_FILE; add an `action` column.
@@ -323,13 +327,12 @@ def decide(rule_file: Path, data: Path, output: Path, explain: bool) -> None:
     RULE_FILE may also be a policy file (checked and compiled in memory, nothing written).
     """
     from policyc.batch import decide_file
+    from policyc.files import terminate_like_interrupt
 
     rule = _load_subject(rule_file).rule
-    with _progress("deciding") as progress:
+    with terminate_like_interrupt(), _progress("deciding") as progress:
         counts = decide_file(rule, data, output, explain, progress)
-    total = sum(counts.values())
-    summary = ", ".join(f"{name} {n} ({n / total:.1%})" for name, n in counts.items())
-    click.echo(f"{total} rows -> {output}: {summary}")
+    click.echo(f"{counts.rows} rows -> {output}: {counts.summary()}")
 
 
 @main.command(epilog=CAUTION)

@@ -129,6 +129,7 @@ def test_decide_explain_adds_posteriors_risks_runner_up_and_margin(packhouse_fil
         *(f"risk_{a}" for a in rule.actions),
         "runner_up",
         "margin",
+        "reason",
     ]
     assert list(rows[0])[-len(expected_columns) - 1 :] == ["action", *expected_columns]
     explanation = rule.explain(read_csv_columns(INCOMING, rule.features))

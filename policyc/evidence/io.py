@@ -12,7 +12,7 @@ import queue
 import re
 import threading
 from collections.abc import Callable, Iterator, Sequence
-from contextlib import contextmanager
+from contextlib import ExitStack, contextmanager
 from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Literal, TypeVar, cast
@@ -24,18 +24,23 @@ import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 
 from policyc.errors import DataError
-from policyc.files import atomic_path
+from policyc.evidence._csv_records import CsvRecords, RecordError, split_records
+from policyc.files import atomic_path, same_file
 
 __all__ = [
     "DEFAULT_BATCH_ROWS",
+    "MISSING_CELLS",
     "DataError",
     "FeatureBatch",
+    "RowBatch",
+    "RowSource",
     "TableWriter",
     "count_rows",
     "data_format",
     "read_ahead",
     "read_feature_batches",
     "read_table_batches",
+    "write_rows",
 ]
 
 DEFAULT_BATCH_ROWS = 65_536
@@ -95,9 +100,14 @@ class FeatureBatch:
 
 
 def _csv_blocks(
-    path: Path, columns: Sequence[str] | None, types: dict[str, pa.DataType], batch_rows: int
+    path: Path,
+    columns: Sequence[str] | None,
+    types: dict[str, pa.DataType],
+    batch_rows: int,
+    newlines_in_values: bool = False,
 ) -> pacsv.CSVStreamingReader:
     read_options = pacsv.ReadOptions(block_size=max(1 << 16, batch_rows * 64))
+    parse = pacsv.ParseOptions(newlines_in_values=newlines_in_values)
     convert = pacsv.ConvertOptions(
         include_columns=list(columns) if columns is not None else None,
         column_types=types,
@@ -106,10 +116,11 @@ def _csv_blocks(
         null_values=[""],
         strings_can_be_null=False,
     )
-    return pacsv.open_csv(path, read_options=read_options, convert_options=convert)
+    return pacsv.open_csv(path, read_options=read_options, parse_options=parse, convert_options=convert)
 
 
 _CSV_CONVERSION = re.compile(r"In CSV column #(\d+): .*CSV conversion error to (\w+): invalid value '(.*)'")
+_CSV_NOT_UTF8 = re.compile(r"In CSV column #(\d+): .*invalid UTF8 data")
 
 
 def read_table_batches(
@@ -181,11 +192,15 @@ def read_ahead(batches: Iterator[T], depth: int = 1) -> Iterator[T]:
 
 
 def _csv_batches(
-    path: Path, columns: Sequence[str] | None, types: dict[str, pa.DataType], batch_rows: int
+    path: Path,
+    columns: Sequence[str] | None,
+    types: dict[str, pa.DataType],
+    batch_rows: int,
+    newlines_in_values: bool = False,
 ) -> Iterator[pa.RecordBatch]:
     header = _csv_header(path)
     try:
-        for block in _csv_blocks(path, columns, types, batch_rows):
+        for block in _csv_blocks(path, columns, types, batch_rows, newlines_in_values):
             for start in range(0, block.num_rows, batch_rows):
                 yield block.slice(start, batch_rows)
     except pa.ArrowInvalid as exc:
@@ -193,14 +208,33 @@ def _csv_batches(
 
 
 def _explain_csv_error(path: Path, header: list[str], message: str) -> str:
+    if (match := _CSV_NOT_UTF8.search(message)) is not None:
+        return _not_utf8_message(path, _column_named(header, match.group(1)))
     match = _CSV_CONVERSION.search(message)
     if match is None:
         return f"{path}: {message.splitlines()[0]}"
     column_index, _, value = match.groups()
-    column = header[int(column_index)] if int(column_index) < len(header) else f"#{column_index}"
+    column = _column_named(header, column_index)
     row = _first_row_holding(path, column, value)
     where = f", row {row} (line {row + 1})" if row is not None else ""
     return f"{path}: column {column!r}{where}: {value!r} is not a number"
+
+
+def _column_named(header: list[str], index: str) -> str:
+    return header[int(index)] if int(index) < len(header) else f"#{index}"
+
+
+def _not_utf8_message(path: Path, column: str) -> str:
+    """Name the first cell of ``column`` that is not UTF-8 (the column is re-read as bytes: error path only)."""
+    rows_before = 0
+    for block in _csv_blocks(path, [column], {column: pa.binary()}, DEFAULT_BATCH_ROWS, newlines_in_values=True):
+        for offset, cell in enumerate(block.column(0).to_pylist()):
+            try:
+                cell.decode("utf-8")
+            except UnicodeDecodeError:
+                return f"{path}: column {column!r}, row {rows_before + offset + 1}: {cell!r} is not UTF-8 text"
+        rows_before += block.num_rows
+    return f"{path}: column {column!r} is not UTF-8 text"
 
 
 def _first_row_holding(path: Path, column: str, text: str) -> int | None:
@@ -322,11 +356,15 @@ def _feature_batches(
 
 def batch_to_matrix(path: Path, batch: pa.RecordBatch, features: Sequence[str], first_row: int) -> np.ndarray:
     """Stack the feature columns of a batch into a C-ordered float64 (n, d) array."""
-    columns = _feature_columns(path, batch, features, first_row)
-    matrix = np.empty((batch.num_rows, len(features)), dtype=np.float64)
+    return _rows_matrix(_feature_columns(path, batch, features, first_row), batch.num_rows)
+
+
+def _rows_matrix(columns: Sequence[np.ndarray], n_rows: int) -> np.ndarray:
+    """Columns of equal length as the columns of a C-ordered float64 (n, d) array."""
+    matrix = np.empty((n_rows, len(columns)), dtype=np.float64)
     # One column over all n rows at a time would stride through the whole matrix d times; a block of rows
     # stays in cache while each of its columns is written (about twice as fast for 32 features).
-    for start in range(0, batch.num_rows, _BLOCK_ROWS):
+    for start in range(0, n_rows, _BLOCK_ROWS):
         rows = slice(start, start + _BLOCK_ROWS)
         for j, values in enumerate(columns):
             matrix[rows, j] = values[rows]
@@ -359,19 +397,237 @@ def _refuse_nulls(path: Path, name: str, column: pa.Array, first_row: int) -> No
 
 
 class TableWriter:
-    """Write record batches to CSV or Parquet, atomically: the target appears only when complete."""
+    """Write record batches to CSV or Parquet, atomically: the target appears only when complete.
 
-    def __init__(self, path: Path, schema: pa.Schema) -> None:
+    ``parquet_options`` go to :class:`pyarrow.parquet.ParquetWriter`.
+    """
+
+    def __init__(self, path: Path, schema: pa.Schema, parquet_options: dict[str, bool] | None = None) -> None:
         self.path = path
         self.format = data_format(path)
         self.schema = schema
+        self.parquet_options = parquet_options or {}
 
     @contextmanager
     def open(self) -> Iterator[Callable[[pa.RecordBatch], None]]:
         with atomic_path(self.path) as temporary:
             if self.format == "parquet":
-                with pq.ParquetWriter(temporary, self.schema) as writer:
+                with pq.ParquetWriter(temporary, self.schema, **self.parquet_options) as writer:
                     yield writer.write_batch
             else:
                 with pacsv.CSVWriter(temporary, self.schema) as writer:
                     yield writer.write_batch
+
+
+# --- rows to decide on, passed through untouched ---------------------------------------------------------------
+
+MISSING_CELLS = ("", "NA", "N/A", "NULL", "null")
+"""CSV cells read as a missing value in a feature column, compared after trimming spaces and tabs.
+
+NaN in any spelling the number parser knows (``nan``, ``NaN``, ``NAN``, ``-nan``) is missing as well; infinity
+is a number (the rule judges it invalid). Any other text in a feature column is an error naming row and column.
+"""
+
+
+@dataclass(frozen=True)
+class RowBatch:
+    """Rows of a file to decide on: the features as float64 (n, d), NaN where a value is missing, and the rows
+    as they are in the file: ``columns`` (Parquet as stored; CSV as text) or ``records`` (CSV bytes)."""
+
+    features: np.ndarray
+    first_row: int
+    columns: pa.RecordBatch | None = None
+    records: CsvRecords | None = None
+
+    @property
+    def num_rows(self) -> int:
+        return int(self.features.shape[0])
+
+
+class RowSource:
+    """A CSV or Parquet file read in batches for deciding; nothing but the feature columns is parsed.
+
+    With ``csv_bytes`` a CSV file's rows are kept as their bytes (:attr:`RowBatch.records`), so a CSV output
+    repeats them exactly; otherwise every column is kept as an Arrow column, CSV cells as text (never typed).
+    """
+
+    def __init__(
+        self, path: Path, features: Sequence[str], csv_bytes: bool = False, batch_rows: int = DEFAULT_BATCH_ROWS
+    ) -> None:
+        self.path, self.format = path, data_format(path)
+        if not path.is_file():
+            raise DataError(f"{path}: no such file")
+        self.features, self.batch_rows = tuple(features), batch_rows
+        self.csv_bytes = csv_bytes and self.format == "csv"
+        if self.format == "parquet":
+            try:
+                self.schema = pq.read_schema(path)
+            except (OSError, pa.ArrowException) as error:
+                raise DataError(f"{path}: cannot read as Parquet: {error}") from None
+        else:
+            self.schema = pa.schema([(name, pa.string()) for name in _csv_header(path)])
+        self.names: list[str] = list(self.schema.names)
+        missing = [f for f in self.features if f not in self.names]
+        if missing:
+            raise DataError(f"{path}: missing feature column(s) {missing}; the file has {self.names}")
+        doubled = sorted({f for f in self.features if self.names.count(f) > 1})
+        if doubled:
+            raise DataError(f"{path}: feature column(s) {doubled} appear more than once; keep one of each")
+
+    def batches(self) -> Iterator[RowBatch]:
+        """The file's rows in batches of at most ``batch_rows`` (read one batch ahead on a worker thread)."""
+        return read_ahead(self._rows_or_data_error())
+
+    def _rows_or_data_error(self) -> Iterator[RowBatch]:
+        try:
+            yield from self._parquet_rows() if self.format == "parquet" else self._csv_rows()
+        except (OSError, pa.ArrowException) as error:
+            raise DataError(f"{self.path}: cannot read: {error}") from None
+
+    def csv_header(self) -> tuple[bytes, bytes]:
+        """The CSV header record's bytes and line end (empty lines before it included)."""
+        with self.path.open("rb") as stream:
+            return next(split_records(stream), (b"", b""))
+
+    def _parquet_rows(self) -> Iterator[RowBatch]:
+        first_row = 1
+        for batch in _parquet_batches(self.path, None, self.batch_rows, (), ()):
+            columns = [
+                _as_float(self.path, f, batch.column(self.names.index(f)), first_row - 1).to_numpy(zero_copy_only=False)
+                for f in self.features
+            ]
+            yield RowBatch(_rows_matrix(columns, batch.num_rows), first_row, columns=batch)
+            first_row += batch.num_rows
+
+    def _csv_rows(self) -> Iterator[RowBatch]:
+        columns = list(self.features) if self.csv_bytes else None
+        texts = {name: pa.string() for name in (columns or self.names)}
+        blocks = _csv_batches(self.path, columns, texts, self.batch_rows, newlines_in_values=True)
+        with ExitStack() as stack:
+            records = self._records(stack) if self.csv_bytes else None
+            first_row = 1
+            for batch in blocks:
+                numbers = [
+                    self._numbers(f, batch.column(batch.schema.names.index(f)), first_row) for f in self.features
+                ]
+                kept = _take_records(self.path, records, batch.num_rows) if records is not None else None
+                yield RowBatch(_rows_matrix(numbers, batch.num_rows), first_row, batch if kept is None else None, kept)
+                first_row += batch.num_rows
+            if records is not None and next(records, None) is not None:
+                raise DataError(f"{self.path}: {_UNMATCHED_RECORDS}")
+
+    def _records(self, stack: ExitStack) -> Iterator[tuple[bytes, bytes]]:
+        records = split_records(stack.enter_context(self.path.open("rb")))
+        next(records, None)  # the header
+        return _located_record_errors(self.path, records)
+
+    def _numbers(self, name: str, text: pa.Array, first_row: int) -> np.ndarray:
+        """A feature column's cells as float64, NaN where missing (:data:`MISSING_CELLS`); other text is an error."""
+        trimmed = pc.utf8_trim(text, " \t")
+        blank = pc.is_in(trimmed, value_set=pa.array(MISSING_CELLS))
+        try:
+            numbers = pc.cast(pc.if_else(blank, pa.scalar(None, pa.string()), trimmed), pa.float64())
+        except pa.ArrowInvalid:
+            row, value = _first_not_a_number(trimmed, blank)
+            raise DataError(f"{self.path}: column {name!r}, row {first_row + row}: {value!r} is not a number") from None
+        return numbers.to_numpy(zero_copy_only=False)
+
+
+_UNMATCHED_RECORDS = "the rows could not be matched to the file's lines (irregular quoting?); nothing was written"
+
+
+def _first_not_a_number(trimmed: pa.Array, blank: pa.Array) -> tuple[int, str]:
+    """Offset and text of the first cell that is neither missing nor a number (error path only)."""
+    for offset, (value, is_blank) in enumerate(zip(trimmed.to_pylist(), blank.to_pylist(), strict=True)):
+        try:
+            if not is_blank:
+                pc.cast(pa.scalar(value), pa.float64())
+        except pa.ArrowInvalid:
+            return offset, str(value)
+    raise AssertionError("a cast failed on no single cell")  # pragma: no cover - pyarrow casts cell by cell
+
+
+def _take_records(path: Path, records: Iterator[tuple[bytes, bytes]], n_rows: int) -> CsvRecords:
+    bodies, ends = [], []
+    for body, end in records:
+        bodies.append(body)
+        ends.append(end)
+        if len(bodies) == n_rows:
+            return CsvRecords(bodies, ends)
+    raise DataError(f"{path}: {_UNMATCHED_RECORDS}")
+
+
+def _located_record_errors(path: Path, records: Iterator[tuple[bytes, bytes]]) -> Iterator[tuple[bytes, bytes]]:
+    rows = 0
+    try:
+        for record in records:
+            yield record
+            rows += 1
+    except RecordError as error:
+        raise DataError(f"{path}: after row {rows}: {error}") from None
+
+
+def _csv_text(batch: pa.RecordBatch) -> list[bytes]:
+    """Each row of ``batch`` as CSV cells joined by commas (no line end): numbers in their shortest exact form,
+    text quoted when needed, nulls empty."""
+    columns = []
+    for column in batch.columns:
+        if pa.types.is_string(column.type):
+            needs_quotes = pc.match_substring_regex(column, '[,"\\r\\n]')
+            quoted = pc.binary_join_element_wise('"', pc.replace_substring(column, '"', '""'), '"', "")
+            column = pc.if_else(needs_quotes, quoted, column)
+        columns.append(pc.fill_null(pc.cast(column, pa.string()), ""))
+    joined = pc.binary_join_element_wise(*columns, ",")
+    return cast(list[bytes], pc.cast(joined, pa.binary()).to_pylist())
+
+
+@contextmanager
+def write_rows(path: Path, source: RowSource, added: pa.Schema) -> Iterator[Callable[[RowBatch, pa.RecordBatch], None]]:
+    """Write the rows of ``source`` with the ``added`` columns after them to ``path`` (format from its suffix),
+    atomically. The input columns are not re-typed: CSV records kept as bytes are written as they were read.
+
+    Refuses (DataError) to write over the source file itself, by any path that leads to it.
+    """
+    if same_file(path, source.path):
+        raise DataError(f"{path}: is the input file {source.path}; write to another file")
+    if source.csv_bytes and data_format(path) == "csv":
+        body, end = source.csv_header()
+        with atomic_path(path) as temporary, temporary.open("wb") as stream:
+            names = pa.record_batch([pa.array([name]) for name in added.names], names=added.names)
+            stream.write(body + b"," + _csv_text(names)[0] + end)
+
+            def write_records(rows: RowBatch, extra: pa.RecordBatch) -> None:
+                assert rows.records is not None
+                cells = _csv_text(extra)
+                records = rows.records
+                stream.write(
+                    b"".join(
+                        part
+                        for body, cell, end in zip(records.bodies, cells, records.ends, strict=True)
+                        for part in (body, b",", cell, end)
+                    )
+                )
+
+            yield write_records
+        return
+    schema = pa.schema([*source.schema, *added], metadata=source.schema.metadata)
+    with TableWriter(path, schema, _parquet_options(source)).open() as write:
+        yield lambda rows, extra: write(_joined(rows, extra, schema))
+
+
+def _joined(rows: RowBatch, extra: pa.RecordBatch, schema: pa.Schema) -> pa.RecordBatch:
+    assert rows.columns is not None
+    return pa.RecordBatch.from_arrays([*rows.columns.columns, *extra.columns], schema=schema)
+
+
+def _parquet_options(source: RowSource) -> dict[str, bool]:
+    """Writer options that keep a Parquet input's physical types: INT96 timestamps, decimals stored as integers."""
+    if source.format != "parquet":
+        return {}
+    columns = list(pq.ParquetFile(source.path).schema)
+    return {
+        "use_deprecated_int96_timestamps": any(c.physical_type == "INT96" for c in columns),
+        "store_decimal_as_integer": any(
+            c.logical_type.type == "DECIMAL" and c.physical_type in ("INT32", "INT64") for c in columns
+        ),
+    }
