@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
@@ -19,11 +19,12 @@ from policyc.compiler.limits import (
 from policyc.compiler.manifest import LimitsRecord, RuleManifest
 from policyc.errors import DataError, FitProblem
 from policyc.evidence import FittedEvidence, Progress, fit_evidence
+from policyc.evidence.calibration import brier_score, expected_calibration_error, log_loss
 from policyc.language.checks import load_checked_policy
 from policyc.language.diagnostics import CompileError, Diagnostic, Severity
 from policyc.language.model import Policy
 from policyc.language.source import SourceDocument
-from policyc.runtime import FORMAT_NAME, FORMAT_VERSION, Rule
+from policyc.runtime import FORMAT_NAME, FORMAT_VERSION, Rule, kernel
 from policyc.runtime.artefact import decode_rule, encode_rule
 
 __all__ = ["CompiledPolicy", "compile_policy", "rule_from_parts"]
@@ -126,12 +127,45 @@ def rule_from_parts(
     loss = limits.adjusted_loss if limits is not None else _stated_loss(policy)
     with np.errstate(divide="ignore"):
         log_priors = np.log(priors)
+    fitted = _with_calibration_scores(fitted)
     params = {"log_priors": log_priors, "loss": loss, **fitted.params}
     record = LimitsRecord(**limits.manifest_entry(actions, policy.classes)) if limits is not None else None
     manifest = _manifest(policy, fitted, priors, actions, policy_sha256, record)
     # Round-trip through the artefact encoding: the in-memory rule is exactly the one a file holds.
     encoded_manifest, encoded_params = decode_rule(encode_rule(manifest, params), origin=policy.policy)
     return Rule(encoded_manifest, encoded_params, origin=policy.policy)
+
+
+def _with_calibration_scores(fitted: FittedEvidence) -> FittedEvidence:
+    """Add log-loss, Brier score and ECE on the calibration data, before and after the fitted map, to the
+    evidence description. The map is applied by the runtime kernel itself, so the scores are the rule's."""
+    sample = fitted.calibration_sample
+    if sample is None:
+        return fitted
+    before = sample.probabilities / sample.probabilities.sum(axis=1, keepdims=True)
+    with np.errstate(divide="ignore"):
+        log_q = kernel.calibrated_log_probabilities(sample.probabilities, fitted.params)
+    top = log_q.max(axis=1, keepdims=True)
+    mapped = np.isfinite(top[:, 0])
+    # q = softmax(ln q): subtract the row max first
+    after = np.exp(log_q[mapped] - top[mapped])
+    after /= after.sum(axis=1, keepdims=True)
+    codes = sample.codes[mapped]
+    scores = {
+        "before": _scores(before[mapped], codes),
+        "after": _scores(after, codes),
+        "rows_not_calibrated": int(np.count_nonzero(~mapped)),
+    }
+    description = {**fitted.description, "calibrate": {**fitted.description["calibrate"], "scores": scores}}
+    return replace(fitted, description=description)
+
+
+def _scores(probabilities: np.ndarray, codes: np.ndarray) -> dict[str, float]:
+    return {
+        "log_loss": log_loss(probabilities, codes),
+        "brier": brier_score(probabilities, codes),
+        "ece": expected_calibration_error(probabilities, codes),
+    }
 
 
 def _manifest(

@@ -21,4 +21,4 @@ def fit_evidence(policy: Policy, base_dir: Path | None, progress: Progress | Non
     """
     if isinstance(policy.evidence, GaussianEvidence):
         return gaussian.fit(policy, policy.evidence, base_dir, progress)
-    return supplied.freeze(policy)
+    return supplied.freeze(policy, base_dir)

@@ -4,9 +4,12 @@ from __future__ import annotations
 
 from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
+
+if TYPE_CHECKING:
+    from policyc.evidence.calibration import CalibrationSample
 
 __all__ = ["FittedEvidence", "Progress"]
 
@@ -23,3 +26,5 @@ class FittedEvidence:
     description: dict[str, Any]
     training_counts: dict[str, int] | None = None
     training_sha256: str | None = None
+    calibration_sample: CalibrationSample | None = None
+    """Posterior evidence with ``calibrate:``: the labelled rows the map was fitted on, for the compiler's scores."""

@@ -32,6 +32,7 @@ from policyc.language.model import GaussianEvidence, Policy, PosteriorEvidence, 
 from policyc.language.source import SourceDocument, load_source
 
 __all__ = [
+    "ISOTONIC_ADVISED_ROWS_PER_CLASS",
     "PRIOR_SUM_TOLERANCE",
     "RULES",
     "ActionRegion",
@@ -40,6 +41,7 @@ __all__ = [
     "action_regions",
     "check_document",
     "check_file",
+    "label_counts",
     "load_checked_policy",
 ]
 
@@ -461,6 +463,15 @@ def posterior_evidence_is_documented(policy: Policy, context: CheckContext) -> I
     evidence = policy.evidence
     if not isinstance(evidence, PosteriorEvidence):
         return
+    if evidence.trained_priors is None:
+        if evidence.calibrate is None:
+            yield _error(
+                "trained-priors-missing",
+                "posterior evidence needs the class priors the upstream model was trained under",
+                ("evidence",),
+                "add trained_priors:, or calibrate: to fit a map whose data's class frequencies take their place",
+            )
+        return
     yield from _probability_vector(
         evidence.trained_priors, policy.classes, ("evidence", "trained_priors"), "trained priors"
     )
@@ -471,13 +482,14 @@ def posterior_evidence_is_documented(policy: Policy, context: CheckContext) -> I
                 f"trained prior of {name!r} is 0; the prior correction divides by it",
                 ("evidence", "trained_priors", name),
             )
-    if evidence.calibration is None:
+    if evidence.calibration is None and evidence.calibrate is None:
         yield _warning(
             "uncalibrated-posterior",
             "posterior evidence has no calibration record; a cost-derived rule is only right on "
             "calibrated probabilities",
             ("evidence",),
-            "add calibration: {method: ..., data_sha256: ..., score: {metric: brier, value: ...}}",
+            "add calibrate: {method: temperature, data: ..., label: ...} to fit a map here, or record the upstream "
+            "calibration: {method: ..., data_sha256: ..., score: {metric: brier, value: ...}}",
         )
 
 
@@ -616,6 +628,104 @@ def limits_are_feasible_on_their_face(policy: Policy, context: CheckContext) -> 
         )
 
 
+# --- calibration fitted into the rule ------------------------------------------------------------
+
+ISOTONIC_ADVISED_ROWS_PER_CLASS = 1000
+"""Below this many calibration rows of a class an isotonic map tends to overfit; Niculescu-Mizil & Caruana
+(ICML 2005) found sigmoid fits better than isotonic ones below about a thousand calibration rows (from memory)."""
+
+
+def calibrate_replaces_trained_priors_and_record(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
+    evidence = policy.evidence
+    if not isinstance(evidence, PosteriorEvidence) or evidence.calibrate is None:
+        return
+    if evidence.trained_priors is not None:
+        yield _error(
+            "calibrate-with-trained-priors",
+            "calibrate: fits probabilities that hold under the calibration data's class frequencies, "
+            "which take the place of trained_priors",
+            ("evidence", "trained_priors"),
+            "remove trained_priors:",
+        )
+    if evidence.calibration is not None:
+        yield _error(
+            "calibrate-with-calibration-record",
+            "calibration: records a calibration done upstream, calibrate: fits one here; state one of them",
+            ("evidence", "calibration"),
+        )
+
+
+def regularisation_is_for_dirichlet(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
+    evidence = policy.evidence
+    if not isinstance(evidence, PosteriorEvidence) or evidence.calibrate is None:
+        return
+    if evidence.calibrate.regularisation is not None and evidence.calibrate.method != "dirichlet":
+        yield _error(
+            "regularisation-without-dirichlet",
+            f"regularisation: applies to method: dirichlet only, not {evidence.calibrate.method}",
+            ("evidence", "calibrate", "regularisation"),
+            "remove regularisation:, or use method: dirichlet",
+        )
+
+
+def calibration_data_is_present_and_pinned(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
+    evidence = policy.evidence
+    if isinstance(evidence, PosteriorEvidence) and evidence.calibrate is not None:
+        yield from _data_file_is_present_and_pinned(
+            context, evidence.calibrate.data, evidence.calibrate.sha256, ("evidence", "calibrate"), "calibration"
+        )
+
+
+def calibration_data_has_enough_rows(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
+    evidence = policy.evidence
+    if not isinstance(evidence, PosteriorEvidence) or evidence.calibrate is None:
+        return
+    fit = evidence.calibrate
+    path = context.resolve(fit.data)
+    if not path.is_file():
+        return  # reported by calibration_data_is_present_and_pinned
+    try:
+        counts = label_counts(path, fit.label)
+    except ValueError as error:
+        yield _error("calibration-data-unusable", str(error), ("evidence", "calibrate", "data"))
+        return
+    needed = fit.minimum_rows_per_class(len(policy.classes))
+    for name in policy.classes:
+        if counts[name] < needed:
+            yield _error(
+                "calibration-too-few-rows",
+                f"calibration data has {counts[name]} rows of class {name!r}; method {fit.method} needs at least "
+                f"{needed} per class",
+                ("evidence", "calibrate", "data"),
+                "add labelled rows of that class",
+            )
+        elif fit.method == "isotonic" and counts[name] < ISOTONIC_ADVISED_ROWS_PER_CLASS:
+            yield _warning(
+                "isotonic-few-rows",
+                f"calibration data has {counts[name]} rows of class {name!r}; an isotonic map on fewer than "
+                f"{ISOTONIC_ADVISED_ROWS_PER_CLASS} rows per class tends to overfit",
+                ("evidence", "calibrate", "method"),
+                "use method: temperature or dirichlet, or add rows",
+            )
+
+
+def label_counts(path: Path, label: str) -> Counter[str]:
+    """How often each label occurs in one column of a CSV or Parquet file; ValueError when unreadable."""
+    import pyarrow as pa
+    import pyarrow.csv as pacsv
+    import pyarrow.parquet as pq
+
+    try:
+        if path.suffix.lower() in (".parquet", ".pq"):
+            column = pq.read_table(path, columns=[label]).column(label)
+        else:
+            options = pacsv.ConvertOptions(include_columns=[label], column_types={label: pa.string()})
+            column = pacsv.read_csv(path, convert_options=options).column(label)
+    except (pa.ArrowException, OSError, KeyError) as error:
+        raise ValueError(f"{path}: cannot read column {label!r}: {error}") from None
+    return Counter(str(value) for value in column.to_pylist())
+
+
 RULES: tuple[Rule, ...] = (
     classes_are_distinct_and_at_least_two,
     actions_are_distinct,
@@ -638,6 +748,10 @@ RULES: tuple[Rule, ...] = (
     reference_data_is_present_and_pinned,
     listed_actions_can_be_chosen,
     limits_are_feasible_on_their_face,
+    calibrate_replaces_trained_priors_and_record,
+    regularisation_is_for_dirichlet,
+    calibration_data_is_present_and_pinned,
+    calibration_data_has_enough_rows,
 )
 
 

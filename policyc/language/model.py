@@ -26,6 +26,7 @@ from policyc.language.source import SourceDocument
 
 __all__ = [
     "Calibration",
+    "CalibrationFit",
     "CalibrationScore",
     "Evidence",
     "GaussianEvidence",
@@ -95,13 +96,45 @@ class Calibration(_Strict):
     score: CalibrationScore | None = None
 
 
+class CalibrationFit(_Strict):
+    """Labelled data on which the compiler fits a calibration map of the upstream probabilities."""
+
+    method: Literal["temperature", "dirichlet", "isotonic"] = Field(
+        description="temperature: q ∝ p^(1/T); dirichlet: q = softmax(W ln p + b); "
+        "isotonic: per class, isotonic regression of the class indicator on its probability"
+    )
+    data: str = Field(
+        description="CSV or Parquet with the probability columns and a label column, relative to the policy"
+    )
+    label: Name = Field(description="column that holds the class names")
+    sha256: Sha256 | None = Field(default=None, description="pin the exact file content")
+    regularisation: Annotated[float, Field(ge=0.0, allow_inf_nan=False)] | None = Field(
+        default=None,
+        description="dirichlet only: weight of the off-diagonal and intercept penalty; 0 = plain maximum likelihood",
+    )
+
+    def minimum_rows_per_class(self, n_classes: int) -> int:
+        """Fewest labelled rows of each class the method can be fitted on.
+
+        Every class needs rows for its frequency (which replaces the trained priors); a dirichlet map has
+        K + 1 parameters per class (a row of W and an intercept), so K + 1 rows per class give at least as
+        many rows as parameters (common practice, no source).
+        """
+        return n_classes + 1 if self.method == "dirichlet" else 2
+
+
 class PosteriorEvidence(_Strict):
-    """Calibrated class probabilities from an upstream model, trained under other priors."""
+    """Class probabilities from an upstream model, trained under other priors, calibrated upstream or here."""
 
     kind: Literal["posterior"]
     columns: dict[Name, Name] = Field(description="class -> column of its probability")
-    trained_priors: dict[Name, Probability] = Field(description="class priors the upstream model was trained under")
+    trained_priors: dict[Name, Probability] | None = Field(
+        default=None,
+        description="class priors the upstream model was trained under (with calibrate: the calibration data's "
+        "class frequencies take their place)",
+    )
     calibration: Calibration | None = None
+    calibrate: CalibrationFit | None = None
     sum_tolerance: Annotated[float, Field(gt=0.0, le=0.1)] = Field(
         default=1e-6, description="rows whose probabilities sum further than this from 1 are invalid"
     )

@@ -10,7 +10,10 @@ Parameters arrive as a mapping of name to float64 array:
 * every rule: ``log_priors`` (K,), ``loss`` (A, K) with the reject row, if any, last;
 * gaussian: ``centre`` (d,), ``whitening`` (K*d, d) stacking L_k^-1 for Σ_k = L_k L_k^T,
   ``whitened_means`` (K*d,) stacking L_k^-1 (μ_k - centre), ``log_normalisers`` (K,);
-* posterior: ``log_trained_priors`` (K,), ``sum_tolerance`` (), ``renormalise`` () as 0.0 or 1.0;
+* posterior: ``log_trained_priors`` (K,), ``sum_tolerance`` (), ``renormalise`` () as 0.0 or 1.0; with a fitted
+  calibration map also ``calibration_floor`` () and one of: ``calibration_inverse_temperature`` ();
+  ``calibration_weights`` (K, K) and ``calibration_bias`` (K,); ``calibration_thresholds`` (M,),
+  ``calibration_values`` (M,) and ``calibration_ends`` (K,) (class k's points end at ends[k]);
 * log-likelihood: nothing more.
 """
 
@@ -75,8 +78,32 @@ def posterior_log_likelihoods(X: np.ndarray, params: dict[str, np.ndarray]) -> t
     else:
         valid = finite & in_range & (np.abs(sums - 1.0) <= params["sum_tolerance"])
     with np.errstate(divide="ignore", invalid="ignore"):
-        log_likelihoods = np.log(X) - params["log_trained_priors"]
+        log_likelihoods = calibrated_log_probabilities(X, params) - params["log_trained_priors"]
     return log_likelihoods, valid
+
+
+def calibrated_log_probabilities(P: np.ndarray, params: dict[str, np.ndarray]) -> np.ndarray:
+    """ln q(k|x) of the rule's calibration map, up to a per-row constant; ln p itself without a map.
+
+    With z = ln max(p, ε) (ε = calibration_floor):
+    temperature (Guo et al. 2017): ln q = z / T;  dirichlet (Kull et al. 2019): ln q = W z + b;
+    isotonic (Zadrozny & Elkan 2002): q_k ∝ m_k(p_k), m_k piecewise linear through its fitted points,
+    clipped outside; a row whose every m_k is 0 gets -inf everywhere and is invalid.
+    """
+    if "calibration_floor" not in params:
+        return np.log(P)
+    if "calibration_thresholds" in params:
+        ends = params["calibration_ends"].astype(np.int64)
+        starts = np.concatenate(([0], ends[:-1]))
+        columns = [
+            np.interp(P[:, k], params["calibration_thresholds"][a:b], params["calibration_values"][a:b])
+            for k, (a, b) in enumerate(zip(starts, ends, strict=True))
+        ]
+        return np.log(np.stack(columns, axis=1))
+    z = np.log(np.maximum(P, params["calibration_floor"]))
+    if "calibration_inverse_temperature" in params:
+        return z * params["calibration_inverse_temperature"]
+    return z @ params["calibration_weights"].T + params["calibration_bias"]
 
 
 def supplied_log_likelihoods(X: np.ndarray, params: dict[str, np.ndarray]) -> tuple[np.ndarray, np.ndarray]:

@@ -28,6 +28,35 @@ _REQUIRED = {
 }
 
 
+_CALIBRATION_MAPS: tuple[tuple[str, ...], ...] = (
+    ("calibration_inverse_temperature",),
+    ("calibration_weights", "calibration_bias"),
+    ("calibration_thresholds", "calibration_values", "calibration_ends"),
+)
+
+
+def _calibration_shapes(params: Mapping[str, np.ndarray], n_classes: int, origin: str) -> dict[str, tuple[int, ...]]:
+    """Expected shapes of a fitted calibration map's arrays; exactly one map, isotonic pieces that add up."""
+    present = [names for names in _CALIBRATION_MAPS if any(n in params for n in names)]
+    if len(present) != 1 or any(n not in params for n in present[0]):
+        raise ArtefactError(f"{origin}: the calibration map's arrays are incomplete or of more than one method")
+    names = present[0]
+    if names[0] == "calibration_inverse_temperature":
+        return {"calibration_floor": (), names[0]: ()}
+    if names[0] == "calibration_weights":
+        return {"calibration_floor": (), names[0]: (n_classes, n_classes), names[1]: (n_classes,)}
+    ends = params["calibration_ends"]
+    points = params["calibration_thresholds"].shape
+    if ends.shape != (n_classes,) or not _piece_ends_valid(ends, points[0] if len(points) == 1 else -1):
+        raise ArtefactError(f"{origin}: array 'calibration_ends' does not split the isotonic points by class")
+    return {"calibration_floor": (), names[0]: points, names[1]: points}
+
+
+def _piece_ends_valid(ends: np.ndarray, n_points: int) -> bool:
+    starts = np.concatenate(([0.0], ends[:-1]))
+    return bool(np.all(ends == np.round(ends)) and np.all(ends - starts >= 1) and ends[-1] == n_points)
+
+
 @dataclass(frozen=True)
 class Explanation:
     """Per row: posteriors (n, K), risks (n, A), the chosen and runner-up actions (indices into
@@ -97,6 +126,8 @@ class Rule:
             }
         elif self.evidence in ("posterior", "log-likelihood") and n_features != n_classes:
             raise ArtefactError(f"{origin}: manifest field 'features' must name one column per class")
+        if self.evidence == "posterior" and "calibration_floor" in self.params:
+            expected |= _calibration_shapes(self.params, n_classes, origin)
         for name, shape in expected.items():
             if self.params[name].shape != shape:
                 raise ArtefactError(f"{origin}: array {name!r} has shape {self.params[name].shape}, expected {shape}")
