@@ -27,6 +27,7 @@ from __future__ import annotations
 import hashlib
 import io
 import json
+import math
 import re
 import zipfile
 from typing import Any, Final
@@ -226,14 +227,21 @@ def _check_version(version: str, origin: str) -> None:
 
 
 def _read_array(blob: bytes, name: str, shape: list[int], origin: str) -> np.ndarray:
+    """The .npy bytes as a read-only float64 array, after checking that its header declares the manifest's
+    shape and exactly as many bytes as follow it (nothing is allocated on the header's word alone)."""
+    stream = io.BytesIO(blob)
     try:
-        array = np.lib.format.read_array(io.BytesIO(blob), allow_pickle=False)
+        version = np.lib.format.read_magic(stream)
+        declared, fortran_order, dtype = np.lib.format.read_array_header_1_0(stream)
     except Exception as exc:  # a damaged .npy header fails in numpy's parser with varying types
         raise ArtefactError(f"{origin}: array {name!r} is not a valid .npy ({_reason(exc)})") from None
-    if array.dtype != np.dtype("<f8"):
-        raise ArtefactError(f"{origin}: array {name!r} has dtype {array.dtype}, expected float64")
-    if list(array.shape) != shape:
-        raise ArtefactError(f"{origin}: array {name!r} has shape {array.shape}, manifest says {shape}")
+    if version != (1, 0) or fortran_order or dtype != np.dtype("<f8"):
+        raise ArtefactError(f"{origin}: array {name!r} is not a C-ordered little-endian float64 .npy of format 1.0")
+    if list(declared) != shape:
+        raise ArtefactError(f"{origin}: array {name!r} has shape {declared}, manifest says {shape}")
+    if len(blob) - stream.tell() != 8 * math.prod(shape):
+        raise ArtefactError(f"{origin}: array {name!r} holds {len(blob) - stream.tell()} bytes for shape {declared}")
+    array = np.frombuffer(blob, dtype="<f8", offset=stream.tell()).reshape(declared)
     array.setflags(write=False)
     return array
 

@@ -339,6 +339,23 @@ def test_size_caps_are_checked_before_reading(demo: bytes, monkeypatch: pytest.M
         rule_from_bytes(demo)
 
 
+def test_an_array_header_claiming_more_than_it_holds_is_refused_before_allocating(demo: bytes) -> None:
+    # A writer who recomputes the hash can declare any shape: 10**12 x 3 float64 would be 24 TB.
+    contents = members(demo)
+    header = io.BytesIO()
+    np.lib.format.write_array_header_1_0(header, {"descr": "<f8", "fortran_order": False, "shape": (10**12, 3)})
+    loss = contents["arrays/loss.npy"]
+    data_start = len(loss) - 8 * rule_from_bytes(demo).params["loss"].size
+    contents["arrays/loss.npy"] = header.getvalue() + loss[data_start:]
+    manifest = json.loads(contents["manifest.json"])
+    manifest["arrays"]["loss"] = [10**12, 3]
+    blobs = {name: contents[f"arrays/{name}.npy"] for name in manifest["arrays"]}
+    manifest["content_sha256"] = content_hash(manifest, blobs)
+    forged = pack_members(contents | {"manifest.json": canonical(manifest)})
+    with pytest.raises(ArtefactError, match=r"array 'loss' holds 96 bytes for shape \(1000000000000, 3\)"):
+        rule_from_bytes(forged)
+
+
 def test_a_compressed_bomb_is_refused_without_inflating(demo: bytes) -> None:
     buffer = io.BytesIO()
     with zipfile.ZipFile(buffer, "w", compression=zipfile.ZIP_DEFLATED) as archive:
