@@ -399,15 +399,19 @@ def _data_file_is_present_and_pinned(
 ) -> Iterator[Diagnostic]:
     """``what``-data-missing / -unpinned / -hash-mismatch for a data file stated at ``where`` (data, sha256)."""
     path = context.resolve(relative)
-    if not path.is_file():
+    try:
+        digest = file_sha256(path) if path.is_file() else None
+        problem = "does not exist or is not a regular file"
+    except OSError as exc:  # a name too long for the file system, no permission, ...
+        digest, problem = None, f"cannot be read: {exc.strerror}"
+    if digest is None:
         yield _error(
             f"{what}-data-missing",
-            f"{what} data {str(path)!r} does not exist",
+            f"{what} data {_shortened(str(path))!r} {problem}",
             (*where, "data"),
             "paths are relative to the policy file",
         )
         return
-    digest = file_sha256(path)
     if pin is None:
         yield Diagnostic(
             f"{what}-data-unpinned",
@@ -423,6 +427,10 @@ def _data_file_is_present_and_pinned(
             (*where, "sha256"),
             "if the new data is intended, review it and update the pin",
         )
+
+
+def _shortened(text: str, limit: int = 200) -> str:
+    return text if len(text) <= limit else f"{text[: limit // 2]}...{text[-limit // 4 :]}"
 
 
 def training_data_is_present_and_pinned(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:

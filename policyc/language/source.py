@@ -49,6 +49,7 @@ __all__ = [
     "SourceDocument",
     "load_source",
     "parse_source",
+    "parse_source_bytes",
 ]
 
 MAX_POLICY_BYTES = 1 << 20  # a policy is a reviewed text file, never megabytes
@@ -188,15 +189,19 @@ def load_source(path: str | FilePath) -> SourceDocument:
     """Read and strictly parse a policy file."""
     file = FilePath(path)
     name = str(path)
-    raw = _read_capped(file, name)
+    return parse_source_bytes(_read_capped(file, name), name, base_dir=file.resolve().parent)
+
+
+def parse_source_bytes(raw: bytes, name: str = "<policy>", base_dir: FilePath | None = None) -> SourceDocument:
+    """Decode policy bytes as UTF-8 and strictly parse them, as :func:`load_source` does with a file's bytes."""
     if len(raw) > MAX_POLICY_BYTES:
         raise _too_large(name, raw)
     try:
         text = raw.decode("utf-8")
     except UnicodeDecodeError as exc:
         line = raw[: exc.start].count(b"\n") + 1
-        raise _source_error(name, "policy-not-utf8", "the file is not UTF-8 text", Position(line, 1)) from exc
-    return parse_source(text, name, base_dir=file.resolve().parent)
+        raise _source_error(name, "policy-not-utf8", "the file is not UTF-8 text", Position(line, 1)) from None
+    return parse_source(text, name, base_dir)
 
 
 def _read_capped(file: FilePath, name: str) -> bytes:
