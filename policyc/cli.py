@@ -344,15 +344,12 @@ def inspect(rule_file: Path, output_format: str, report_file: Path | None) -> No
 
     RULE_FILE may also be a policy file (checked and compiled in memory, nothing written).
     """
+    from policyc.render import dumps
     from policyc.review.inspect import inspection, render_inspection
 
     rule = _load_subject(rule_file).rule
     report = inspection(rule)
-    _emit_report(_json_dump(report) if output_format == "json" else render_inspection(rule, report), report_file)
-
-
-def _json_dump(value: object) -> str:
-    return json.dumps(value, indent=2, sort_keys=True)
+    _emit_report(dumps(report) if output_format == "json" else render_inspection(rule, report), report_file)
 
 
 # --- diff, evaluate, plot -----------------------------------------------------------------------

@@ -55,8 +55,14 @@ def rounded(value: Any, digits: int = JSON_DIGITS) -> Any:
 
 
 def dumps(value: Any) -> str:
-    """Stable JSON: rounded floats, sorted keys, two-space indent."""
-    return json.dumps(rounded(value), indent=2, sort_keys=True, ensure_ascii=False)
+    """The one serializer of reports: stable JSON, floats rounded, NaN and infinity as null, sorted keys.
+
+    ``value`` is a report (a pydantic dataclass, see :mod:`policyc.review.shared.reports`) or plain JSON data.
+    """
+    from pydantic import TypeAdapter  # here: `policyc check` uses this module's tables, not its JSON
+
+    data = TypeAdapter(type(value)).dump_python(value, mode="json", by_alias=True)
+    return json.dumps(rounded(data), indent=2, sort_keys=True, ensure_ascii=False)
 
 
 def _escape(cell: str) -> str:

@@ -21,11 +21,11 @@ ALLOWED: dict[str, set[str]] = {
     "files": set(),
     "render": set(),
     "errors": {"runtime"},
-    "language": {"files", "geometry", "errors"},
+    "language": {"files", "geometry", "errors", "render"},
     "evidence": {"language", "files", "errors"},
     "compiler": {"language", "evidence", "runtime", "files", "render", "errors", "policyc"},
     "batch": {"evidence", "runtime", "errors"},
-    "schemas": {"language", "compiler", "review.reports"},
+    "schemas": {"language", "compiler", "review.diff", "review.evaluate", "review.inspect", "review.priors"},
     "review.shared": {"language", "evidence", "compiler", "runtime", "errors"},
     "review.reports": {"errors"},
 }

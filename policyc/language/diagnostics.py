@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import json
 from collections.abc import Iterable, Mapping, Sequence
-from dataclasses import asdict, dataclass, replace
+from dataclasses import dataclass, replace
 from enum import StrEnum
 
 from policyc.errors import PolicycError
@@ -70,12 +70,6 @@ class Diagnostic:
         if position is None:
             return replace(self, file=file)
         return replace(self, file=file, line=position.line, col=position.column)
-
-    def to_json(self) -> dict[str, object]:
-        data = asdict(self)
-        data["severity"] = self.severity.value
-        data["path"] = json_path(self.path)
-        return data
 
 
 def _nearest_position(
@@ -138,7 +132,9 @@ class PolicyError(PolicycError):
         return render_text(self.diagnostics)
 
     def as_json(self) -> dict[str, object]:
-        return {**super().as_json(), "diagnostics": [d.to_json() for d in self.diagnostics]}
+        from policyc.language.report import check_report
+
+        return {**super().as_json(), "diagnostics": check_report(self.diagnostics).model_dump(mode="json")}
 
 
 class PolicySourceError(PolicyError):
@@ -203,4 +199,7 @@ def _excerpt(diagnostic: Diagnostic, source_lines: Mapping[str, Sequence[str]]) 
 
 def render_json(diagnostics: Iterable[Diagnostic]) -> str:
     """The stable JSON form: a list of objects with the fields of :class:`Diagnostic`."""
-    return json.dumps([d.to_json() for d in diagnostics], indent=2)
+    from policyc.language.report import check_report
+    from policyc.render import dumps
+
+    return dumps(check_report(diagnostics))

@@ -6,12 +6,51 @@ import json
 from typing import Any
 
 import numpy as np
+from pydantic.dataclasses import dataclass
 
 from policyc.geometry.intervals import posterior_intervals
 from policyc.render import format_matrix
+from policyc.review.shared.reports import REPORT_CONFIG
 from policyc.runtime import Rule
 
-__all__ = ["inspection", "render_inspection"]
+__all__ = ["Inspection", "PosteriorInterval", "inspection", "render_inspection"]
+
+
+@dataclass(frozen=True, config=REPORT_CONFIG)
+class PosteriorInterval:
+    """Two classes: the action taken for P(posterior_of | x) in [low, high]."""
+
+    posterior_of: str
+    low: float
+    high: float
+    action: str
+
+
+@dataclass(frozen=True, config=REPORT_CONFIG)
+class Inspection:
+    """What ``policyc inspect`` reports; its JSON is this object (schemas/inspect-report.schema.json)."""
+
+    policy: str | None
+    revision: int | None
+    format_version: str | None
+    policyc_version: str | None
+    content_sha256: str | None
+    policy_sha256: str | None
+    training_sha256: str | None
+    priors_source: str | None
+    invalid_input: str | None
+    loss_unit: str | None
+    reject_action: str | None
+    reject_cost: float | None
+    classes: tuple[str, ...]
+    actions: tuple[str, ...]
+    features: tuple[str, ...]
+    priors: dict[str, float]
+    training_class_counts: dict[str, int] | None
+    evidence: dict[str, Any]
+    loss: dict[str, dict[str, float]]
+    posterior_intervals: tuple[PosteriorInterval, ...] | None  # two classes only
+
 
 _FACTS = (
     "policy",
@@ -29,42 +68,44 @@ _FACTS = (
 )
 
 
-def inspection(rule: Rule) -> dict[str, Any]:
-    """A JSON-ready report; ``posterior_intervals`` only for two classes."""
+def inspection(rule: Rule) -> Inspection:
+    """The report; ``posterior_intervals`` only for two classes."""
     manifest = rule.manifest
-    report: dict[str, Any] = {key: manifest.get(key) for key in _FACTS}
-    report |= {
-        "classes": list(rule.classes),
-        "actions": list(rule.actions),
-        "features": list(rule.features),
-        "priors": manifest["priors"],
-        "training_class_counts": manifest.get("training_class_counts"),
-        "evidence": manifest["evidence"],
-        "loss": {
+    intervals = None
+    if len(rule.classes) == 2:
+        intervals = tuple(
+            PosteriorInterval(rule.classes[1], i.low, i.high, rule.actions[i.action])
+            for i in posterior_intervals(np.asarray(rule.params["loss"]))
+        )
+    facts: dict[str, Any] = {key: manifest.get(key) for key in _FACTS}
+    return Inspection(
+        **facts,
+        classes=rule.classes,
+        actions=rule.actions,
+        features=rule.features,
+        priors=manifest["priors"],
+        training_class_counts=manifest.get("training_class_counts"),
+        evidence=manifest["evidence"],
+        loss={
             a: dict(zip(rule.classes, row, strict=True))
             for a, row in zip(rule.actions, rule.params["loss"].tolist(), strict=True)
         },
-    }
-    if len(rule.classes) == 2:
-        report["posterior_intervals"] = [
-            {"posterior_of": rule.classes[1], "low": i.low, "high": i.high, "action": rule.actions[i.action]}
-            for i in posterior_intervals(np.asarray(rule.params["loss"]))
-        ]
-    return report
+        posterior_intervals=intervals,
+    )
 
 
-def render_inspection(rule: Rule, report: dict[str, Any]) -> str:
-    lines = [f"{key}: {report[key]}" for key in _FACTS if report.get(key) is not None]
+def render_inspection(rule: Rule, report: Inspection) -> str:
+    lines = [f"{key}: {getattr(report, key)}" for key in _FACTS if getattr(report, key) is not None]
     lines.append(f"features: {', '.join(rule.features)}")
-    lines.append("priors: " + ", ".join(f"{c}={report['priors'][c]:.6g}" for c in rule.classes))
-    if report["training_class_counts"]:
-        lines.append("training rows: " + ", ".join(f"{c}={report['training_class_counts'][c]}" for c in rule.classes))
-    lines.append("evidence: " + json.dumps(report["evidence"], sort_keys=True))
-    unit = f" ({report['loss_unit']})" if report.get("loss_unit") else ""
+    lines.append("priors: " + ", ".join(f"{c}={report.priors[c]:.6g}" for c in rule.classes))
+    if report.training_class_counts:
+        lines.append("training rows: " + ", ".join(f"{c}={report.training_class_counts[c]}" for c in rule.classes))
+    lines.append("evidence: " + json.dumps(report.evidence, sort_keys=True))
+    unit = f" ({report.loss_unit})" if report.loss_unit else ""
     lines.append(f"\nloss{unit}, loss[action][true class] (reject row last):")
     lines.append(format_matrix(np.asarray(rule.params["loss"]), rule.actions, rule.classes, "action", "true class"))
-    if "posterior_intervals" in report:
+    if report.posterior_intervals is not None:
         lines.append(f"\ndecision by P({rule.classes[1]} | x):")
-        for interval in report["posterior_intervals"]:
-            lines.append(f"  [{interval['low']:.6g}, {interval['high']:.6g}]: {interval['action']}")
+        for interval in report.posterior_intervals:
+            lines.append(f"  [{interval.low:.6g}, {interval.high:.6g}]: {interval.action}")
     return "\n".join(lines)

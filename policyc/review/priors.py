@@ -10,16 +10,18 @@ p̃_k(x) ∝ (π̃_k / π_k) p_k(x). EM alternates that correction (E-step) with
 
 from __future__ import annotations
 
-import json
-from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import Annotated
 
 import numpy as np
+from pydantic import Field, computed_field
+from pydantic.dataclasses import dataclass
 from scipy import stats
 
 from policyc.evidence.base import Progress
 from policyc.evidence.io import DataError, count_rows, read_feature_batches
+from policyc.render import dumps
+from policyc.review.shared.reports import REPORT_CONFIG
 from policyc.runtime import Rule
 
 __all__ = [
@@ -38,13 +40,15 @@ PASTE_DECIMALS = 4
 """Decimals of the pasteable ``priors:`` block; the rounding remainder goes to the largest class so it sums to 1."""
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, config=REPORT_CONFIG)
 class PriorEstimate:
-    classes: tuple[str, ...]
-    rule_priors: np.ndarray
-    priors: np.ndarray
-    low: np.ndarray
-    high: np.ndarray
+    """What ``policyc priors`` reports; its JSON is this object (schemas/priors-report.schema.json)."""
+
+    classes: Annotated[tuple[str, ...], Field(exclude=True)]
+    rule_priors: Annotated[np.ndarray, Field(exclude=True)]
+    priors: Annotated[np.ndarray, Field(exclude=True)]
+    low: Annotated[np.ndarray, Field(exclude=True)]
+    high: Annotated[np.ndarray, Field(exclude=True)]
     iterations: int
     converged: bool
     change_statistic: float
@@ -52,21 +56,26 @@ class PriorEstimate:
     rows: int
     confidence: float
 
-    def to_json(self) -> dict[str, Any]:
-        """The documented shape: priors, interval, iterations, change_statistic, p_value (and context)."""
-        return {
-            "priors": dict(zip(self.classes, self.priors.tolist(), strict=True)),
-            "interval": {
-                c: [lo, hi] for c, lo, hi in zip(self.classes, self.low.tolist(), self.high.tolist(), strict=True)
-            },
-            "iterations": self.iterations,
-            "converged": self.converged,
-            "change_statistic": self.change_statistic,
-            "p_value": self.p_value,
-            "rule_priors": dict(zip(self.classes, self.rule_priors.tolist(), strict=True)),
-            "rows": self.rows,
-            "confidence": self.confidence,
-        }
+    @computed_field(alias="priors")  # type: ignore[prop-decorator]
+    @property
+    def priors_by_class(self) -> dict[str, float]:
+        return dict(zip(self.classes, self.priors.tolist(), strict=True))
+
+    @computed_field(alias="rule_priors")  # type: ignore[prop-decorator]
+    @property
+    def rule_priors_by_class(self) -> dict[str, float]:
+        return dict(zip(self.classes, self.rule_priors.tolist(), strict=True))
+
+    @computed_field  # type: ignore[prop-decorator]
+    @property
+    def interval(self) -> dict[str, tuple[float, float]]:
+        return {c: (lo, hi) for c, lo, hi in zip(self.classes, self.low.tolist(), self.high.tolist(), strict=True)}
+
+    @computed_field  # type: ignore[prop-decorator]
+    @property
+    def rejects_no_change(self) -> bool:
+        """Whether the change test rejects "no change" at level 1 - confidence."""
+        return self.p_value < 1.0 - self.confidence
 
 
 def _log_likelihood(ratios: np.ndarray, weights: np.ndarray) -> float:
@@ -185,7 +194,7 @@ def priors_block(estimate: PriorEstimate) -> str:
 def verdict(estimate: PriorEstimate) -> str:
     """In words: does the change test reject "no change" at level 1 - confidence?"""
     level = f"{1.0 - estimate.confidence:.3g}"
-    if estimate.p_value < 1.0 - estimate.confidence:
+    if estimate.rejects_no_change:
         return (
             f'The change test rejects "no change" at the {level} level (p = {estimate.p_value:.3g}): the class '
             "mix of the data differs from the rule's priors; review them and recompile."
@@ -201,7 +210,7 @@ def render_priors(estimate: PriorEstimate, output_format: str) -> str:
     if output_format == "yaml":
         return priors_block(estimate)
     if output_format == "json":
-        return json.dumps(estimate.to_json(), indent=2, sort_keys=True)
+        return dumps(estimate)
     interval = f"{estimate.confidence:.0%} interval"
     lines = [f"{'class':<20} {'rule prior':>10} {'estimate':>10}   {interval}"]
     for k, name in enumerate(estimate.classes):

@@ -20,6 +20,7 @@ import numpy as np
 import pytest
 import scipy.stats
 from click.testing import CliRunner
+from jsonschema import Draft202012Validator
 
 from policyc.cli import main
 from policyc.compiler import write_artefact
@@ -448,6 +449,8 @@ def test_claims_report_snapshot(claims_pair: Path, output_format: str, snapshot:
     assert_snapshot(snapshot, out)
     if output_format == "json":
         assert list(json.loads(out)) == ["data", "gates", "new", "old", "passed", "posterior_space", "semantic"]
+        schema = json.loads((SNAPSHOTS.parent.parent / "schemas" / "diff-report.schema.json").read_text("utf-8"))
+        Draft202012Validator(schema).validate(json.loads(out))
 
 
 def test_packhouse_markdown_snapshot(monkeypatch: pytest.MonkeyPatch) -> None:

@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 from scipy import optimize, special, stats
 
-from policyc.review.priors import estimate_priors_from_posteriors
+from policyc.review.priors import estimate_priors_from_posteriors, render_priors
 
 CLASSES = ("a", "b", "c")
 MEANS = np.array([[0.0, 0.0], [2.0, 0.0], [0.0, 2.0]])
@@ -71,7 +71,7 @@ def test_zero_prior_class_stays_zero_and_intervals_are_ordered() -> None:
     assert estimate.priors[2] == 0.0
     assert estimate.priors.sum() == pytest.approx(1.0, abs=1e-12)
     assert np.all(estimate.low <= estimate.priors) and np.all(estimate.priors <= estimate.high)
-    payload = estimate.to_json()
+    payload = json.loads(render_priors(estimate, "json"))
     assert set(payload) >= {"priors", "interval", "iterations", "change_statistic", "p_value"}
 
 

@@ -34,7 +34,7 @@ has four parts:
     action counts) and flip rate; each rule's reject share; the expected risk of
     each rule's decisions under the NEW rule's model, mean R_new(a_old(x)|x) and
     mean R_new(a_new(x)|x), over rows valid for the new rule (the new decisions
-    minimise it by construction, so new - old <= 0); with ``--labels`` the
+    minimise it by construction, so new - old <= 0); with ``--label`` the
     empirical risk of each rule's decisions by the NEW policy's loss matrix and
     the difference new - old with a paired percentile bootstrap interval.
 
@@ -80,9 +80,11 @@ significant digits, NaN/inf as null)::
 
 from __future__ import annotations
 
-from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import Annotated
+
+from pydantic import Field, computed_field
+from pydantic.dataclasses import dataclass
 
 from policyc.evidence.io import DEFAULT_BATCH_ROWS
 from policyc.geometry.sampling import DEFAULT_SIMPLEX_SAMPLES
@@ -91,7 +93,8 @@ from policyc.review.diff.gates import Gate, GateLimits, evaluate_gates
 from policyc.review.diff.posterior import PosteriorSpaceDiff, posterior_space_diff
 from policyc.review.diff.semantic import SemanticChange, semantic_changes
 from policyc.review.shared.bootstrap import DEFAULT_CONFIDENCE, DEFAULT_RESAMPLES, DEFAULT_SEED
-from policyc.review.shared.loading import LoadedRule, identity
+from policyc.review.shared.loading import LoadedRule, RuleIdentity, identity
+from policyc.review.shared.reports import REPORT_CONFIG
 
 __all__ = [
     "DataDiff",
@@ -108,15 +111,18 @@ __all__ = [
 ]
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, config=REPORT_CONFIG)
 class DiffReport:
-    old: LoadedRule
-    new: LoadedRule
+    """What ``policyc diff`` reports; its JSON is this object (schemas/diff-report.schema.json)."""
+
+    old: Annotated[LoadedRule, Field(exclude=True)]
+    new: Annotated[LoadedRule, Field(exclude=True)]
     semantic: tuple[SemanticChange, ...]
     posterior_space: PosteriorSpaceDiff
     data: DataDiff | None
     gates: tuple[Gate, ...]
 
+    @computed_field  # type: ignore[prop-decorator]
     @property
     def passed(self) -> bool:
         return all(gate.passed for gate in self.gates)
@@ -125,16 +131,15 @@ class DiffReport:
     def loss_unit(self) -> str | None:
         return self.new.rule.manifest.get("loss_unit")
 
-    def to_json(self) -> dict[str, Any]:
-        return {
-            "old": identity(self.old),
-            "new": identity(self.new),
-            "semantic": [c.to_json() for c in self.semantic],
-            "posterior_space": self.posterior_space.to_json(),
-            "data": self.data.to_json() if self.data is not None else None,
-            "gates": [g.to_json() for g in self.gates],
-            "passed": self.passed,
-        }
+    @computed_field(alias="old")  # type: ignore[prop-decorator]
+    @property
+    def old_identity(self) -> RuleIdentity:
+        return identity(self.old)
+
+    @computed_field(alias="new")  # type: ignore[prop-decorator]
+    @property
+    def new_identity(self) -> RuleIdentity:
+        return identity(self.new)
 
 
 def diff(

@@ -5,9 +5,11 @@ from __future__ import annotations
 from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import Annotated
 
 import numpy as np
+from pydantic import Field, computed_field
+from pydantic.dataclasses import dataclass as report
 
 from policyc.batch import assess_batch
 from policyc.evidence.io import DEFAULT_BATCH_ROWS, DataError, read_feature_batches
@@ -20,77 +22,107 @@ from policyc.review.shared.bootstrap import (
     categorical_mean_interval,
 )
 from policyc.review.shared.labels import label_codes
+from policyc.review.shared.reports import REPORT_CONFIG
 from policyc.runtime import Rule
 
 __all__ = ["DataDiff", "data_diff"]
 
 
-@dataclass(frozen=True)
+@report(frozen=True, config=REPORT_CONFIG)
+class FlipCounts:
+    """Rows per (old action, new action); rows in old-action order, columns in new-action order."""
+
+    old_actions: tuple[str, ...]
+    new_actions: tuple[str, ...]
+    counts: list[list[int]]
+
+
+@report(frozen=True, config=REPORT_CONFIG)
+class RejectRates:
+    old: float | None
+    new: float | None
+
+
+@report(frozen=True, config=REPORT_CONFIG)
+class ExpectedRisk:
+    rows: int
+    old_decisions: float
+    new_decisions: float
+    basis: str = "mean conditional risk R_new(a|x) under the new rule's model, rows valid for the new rule"
+
+    @computed_field  # type: ignore[prop-decorator]
+    @property
+    def difference(self) -> float:
+        return self.new_decisions - self.old_decisions
+
+
+@report(frozen=True, config=REPORT_CONFIG)
+class EmpiricalRisk:
+    label: str | None
+    rows: int
+    old: float
+    new: float
+    difference: BootstrapInterval  # new - old, paired
+    basis: str = "mean of loss_new[action, true class], the NEW policy's loss matrix"
+
+
+@report(frozen=True, config=REPORT_CONFIG)
 class DataDiff:
     """Both rules' decisions on a reference table (see the module docstring for each quantity)."""
 
     source: str
-    old_actions: tuple[str, ...]
-    new_actions: tuple[str, ...]
-    flips: np.ndarray  # (A_old, A_new) row counts
-    flipped: int
+    old_actions: Annotated[tuple[str, ...], Field(exclude=True)]
+    new_actions: Annotated[tuple[str, ...], Field(exclude=True)]
+    flips: Annotated[np.ndarray, Field(exclude=True)]  # (A_old, A_new) row counts
+    flipped: Annotated[int, Field(exclude=True)]
     invalid_rows: int  # rows the new rule cannot evaluate (sent per its invalid_input)
-    reject_rate_old: float | None
-    reject_rate_new: float | None
-    expected_risk: tuple[float, float, int] | None  # (old decisions, new decisions, rows) under the new model
-    empirical_risk: tuple[float, float, int] | None  # (old, new, rows) by the new loss matrix
-    difference: BootstrapInterval | None  # empirical new - old
-    label: str | None
+    reject_rate_old: Annotated[float | None, Field(exclude=True)]
+    reject_rate_new: Annotated[float | None, Field(exclude=True)]
+    # (old decisions, new decisions, rows) under the new model
+    expected_risk: Annotated[tuple[float, float, int] | None, Field(exclude=True)]
+    # (old, new, rows) by the new loss matrix
+    empirical_risk: Annotated[tuple[float, float, int] | None, Field(exclude=True)]
+    difference: Annotated[BootstrapInterval | None, Field(exclude=True)]  # empirical new - old
+    label: Annotated[str | None, Field(exclude=True)]
     features_differ: bool
     notes: tuple[str, ...] = ()
 
+    @computed_field  # type: ignore[prop-decorator]
     @property
     def rows(self) -> int:
         return int(self.flips.sum())
 
+    @computed_field  # type: ignore[prop-decorator]
     @property
     def flip_rate(self) -> float:
         # flip rate = rows whose action changes / all rows
         return self.flipped / self.rows if self.rows else float("nan")
 
-    def to_json(self) -> dict[str, Any]:
-        expected = None
-        if self.expected_risk is not None:
-            old, new, rows = self.expected_risk
-            expected = {
-                "basis": "mean conditional risk R_new(a|x) under the new rule's model, rows valid for the new rule",
-                "rows": rows,
-                "old_decisions": old,
-                "new_decisions": new,
-                "difference": new - old,
-            }
-        empirical = None
-        if self.empirical_risk is not None and self.difference is not None:
-            old, new, rows = self.empirical_risk
-            empirical = {
-                "label": self.label,
-                "basis": "mean of loss_new[action, true class], the NEW policy's loss matrix",
-                "rows": rows,
-                "old": old,
-                "new": new,
-                "difference": self.difference.to_json(),
-            }
-        return {
-            "source": self.source,
-            "rows": self.rows,
-            "invalid_rows": self.invalid_rows,
-            "features_differ": self.features_differ,
-            "notes": list(self.notes),
-            "flips": {
-                "old_actions": list(self.old_actions),
-                "new_actions": list(self.new_actions),
-                "counts": self.flips.tolist(),
-            },
-            "flip_rate": self.flip_rate,
-            "reject_rate": {"old": self.reject_rate_old, "new": self.reject_rate_new},
-            "expected_risk": expected,
-            "empirical_risk": empirical,
-        }
+    @computed_field(alias="flips")  # type: ignore[prop-decorator]
+    @property
+    def flip_counts(self) -> FlipCounts:
+        return FlipCounts(self.old_actions, self.new_actions, self.flips.tolist())
+
+    @computed_field(alias="reject_rate")  # type: ignore[prop-decorator]
+    @property
+    def reject_rates(self) -> RejectRates:
+        return RejectRates(self.reject_rate_old, self.reject_rate_new)
+
+    @computed_field(alias="expected_risk")  # type: ignore[prop-decorator]
+    @property
+    def expected_risk_report(self) -> ExpectedRisk | None:
+        if self.expected_risk is None:
+            return None
+        old, new, rows = self.expected_risk
+        return ExpectedRisk(rows, old, new)
+
+    @computed_field(alias="empirical_risk")  # type: ignore[prop-decorator]
+    @property
+    def empirical_risk_report(self) -> EmpiricalRisk | None:
+        if self.empirical_risk is None or self.difference is None:
+            return None
+        old, new, rows = self.empirical_risk
+        return EmpiricalRisk(self.label, rows, old, new, self.difference)
 
 
 def _action_map(old: Rule, new: Rule) -> np.ndarray:

@@ -3,10 +3,13 @@
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any
+
+from pydantic import computed_field
+from pydantic.dataclasses import dataclass as report
 
 from policyc.review.diff.data import DataDiff
 from policyc.review.diff.posterior import PosteriorSpaceDiff
+from policyc.review.shared.reports import REPORT_CONFIG
 
 __all__ = ["Gate", "GateLimits", "evaluate_gates"]
 
@@ -30,17 +33,19 @@ class GateLimits:
         return [name for name, limit in asked.items() if limit is not None]
 
 
-@dataclass(frozen=True)
+@report(frozen=True, config=REPORT_CONFIG)
 class Gate:
     name: str
     limit: float
     value: float | None
     basis: str
 
+    @computed_field  # type: ignore[prop-decorator]
     @property
     def passed(self) -> bool:
         return self.value is not None and self.value <= self.limit
 
+    @computed_field  # type: ignore[prop-decorator]
     @property
     def message(self) -> str:
         if self.value is None:
@@ -51,16 +56,6 @@ class Gate:
             f"gate {self.name} failed: {self.basis} {self.value:.4g} exceeds the limit {self.limit:.4g} "
             f"by {self.value - self.limit:.4g}"  # excess = measured value - limit
         )
-
-    def to_json(self) -> dict[str, Any]:
-        return {
-            "name": self.name,
-            "limit": self.limit,
-            "value": self.value,
-            "passed": self.passed,
-            "basis": self.basis,
-            "message": self.message,
-        }
 
 
 def evaluate_gates(limits: GateLimits, space: PosteriorSpaceDiff, data: DataDiff | None) -> tuple[Gate, ...]:

@@ -4,15 +4,16 @@ from __future__ import annotations
 
 import itertools
 from collections.abc import Sequence
-from dataclasses import dataclass
-from typing import Any
 
 import numpy as np
+from pydantic import computed_field
+from pydantic.dataclasses import dataclass
 
 from policyc.geometry.decisions import align_columns, matching_actions
 from policyc.geometry.intervals import posterior_intervals
 from policyc.geometry.sampling import DEFAULT_SIMPLEX_SAMPLES, SIMPLEX_REPLICATES, decision_pair_shares, mean_and_se
 from policyc.review.shared.bootstrap import DEFAULT_SEED
+from policyc.review.shared.reports import REPORT_CONFIG
 from policyc.runtime import Rule
 
 __all__ = [
@@ -30,7 +31,7 @@ def same_actions(old: Rule, new: Rule) -> np.ndarray:
     return matching_actions(old.actions, old.reject_action, new.actions, new.reject_action)
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, config=REPORT_CONFIG)
 class ActionInterval:
     """Action chosen for P(second class | x) in [low, high]."""
 
@@ -38,11 +39,8 @@ class ActionInterval:
     high: float
     action: str
 
-    def to_json(self) -> dict[str, Any]:
-        return {"low": self.low, "high": self.high, "action": self.action}
 
-
-@dataclass(frozen=True)
+@dataclass(frozen=True, config=REPORT_CONFIG)
 class Movement:
     """Where the chosen action goes from ``old_action`` to ``new_action``: its share of the simplex
     (standard error 0 when exact) and, for two classes, the interval [low, high] of P(second class | x)."""
@@ -54,16 +52,6 @@ class Movement:
     low: float | None = None
     high: float | None = None
 
-    def to_json(self) -> dict[str, Any]:
-        return {
-            "old_action": self.old_action,
-            "new_action": self.new_action,
-            "share": self.share,
-            "standard_error": self.standard_error,
-            "low": self.low,
-            "high": self.high,
-        }
-
 
 POSTERIOR_SPACE_NOTE = (
     "compares the decision maps p -> argmin_a loss[a]·p of the two loss matrices (reject row included); "
@@ -71,7 +59,7 @@ POSTERIOR_SPACE_NOTE = (
 )
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, config=REPORT_CONFIG)
 class PosteriorSpaceDiff:
     comparable: bool
     reason: str | None
@@ -85,28 +73,12 @@ class PosteriorSpaceDiff:
     samples: int | None = None
     replicates: int | None = None
     seed: int | None = None
+    note: str = POSTERIOR_SPACE_NOTE
 
+    @computed_field  # type: ignore[prop-decorator]
     @property
     def posterior_of(self) -> str | None:
         return self.classes[1] if self.comparable and len(self.classes) == 2 else None
-
-    def to_json(self) -> dict[str, Any]:
-        return {
-            "comparable": self.comparable,
-            "reason": self.reason,
-            "classes": list(self.classes),
-            "method": self.method,
-            "changed_share": self.changed_share,
-            "standard_error": self.standard_error,
-            "note": POSTERIOR_SPACE_NOTE,
-            "posterior_of": self.posterior_of,
-            "old_intervals": [i.to_json() for i in self.old_intervals],
-            "new_intervals": [i.to_json() for i in self.new_intervals],
-            "movements": [m.to_json() for m in self.movements],
-            "samples": self.samples,
-            "replicates": self.replicates,
-            "seed": self.seed,
-        }
 
 
 def _named_intervals(loss: np.ndarray, actions: Sequence[str]) -> tuple[ActionInterval, ...]:

@@ -16,9 +16,9 @@ __all__ = ["render_diff"]
 
 
 def render_diff(report: DiffReport, output_format: str) -> str:
-    """``text``, ``markdown`` or ``json`` (the shape is documented in :mod:`policyc.review.diff`)."""
+    """``text``, ``markdown`` or ``json`` (the shape: schemas/diff-report.schema.json)."""
     if output_format == "json":
-        return dumps(report.to_json())
+        return dumps(report)
     if output_format == "markdown":
         return _markdown(report)
     return _text(report)

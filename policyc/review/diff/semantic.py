@@ -8,15 +8,17 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
+from pydantic.dataclasses import dataclass as report
 
 from policyc.review.shared.gaussians import moments_digest
 from policyc.review.shared.loading import LoadedRule
+from policyc.review.shared.reports import REPORT_CONFIG
 from policyc.runtime import Rule
 
 __all__ = ["SemanticChange", "plain_actions", "semantic_changes"]
 
 
-@dataclass(frozen=True)
+@report(frozen=True, config=REPORT_CONFIG)
 class SemanticChange:
     """One setting that differs, rendered ``what: old -> new``; locations are ``file:line:col`` or None."""
 
@@ -26,16 +28,6 @@ class SemanticChange:
     new: str | None
     old_location: str | None = None
     new_location: str | None = None
-
-    def to_json(self) -> dict[str, Any]:
-        return {
-            "what": self.what,
-            "change": self.change,
-            "old": self.old,
-            "new": self.new,
-            "old_location": self.old_location,
-            "new_location": self.new_location,
-        }
 
 
 @dataclass(frozen=True)

@@ -49,11 +49,12 @@ JSON shape (``policyc evaluate --format json``; keys sorted, floats rounded to
 from __future__ import annotations
 
 from collections.abc import Sequence
-from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import Annotated
 
 import numpy as np
+from pydantic import Field, computed_field
+from pydantic.dataclasses import dataclass
 
 from policyc.batch import assess_batch
 from policyc.evidence.io import DEFAULT_BATCH_ROWS, DataError, read_feature_batches
@@ -66,7 +67,8 @@ from policyc.review.shared.bootstrap import (
     categorical_mean_interval,
 )
 from policyc.review.shared.labels import label_codes
-from policyc.review.shared.loading import LoadedRule, identity
+from policyc.review.shared.loading import LoadedRule, RuleIdentity, identity
+from policyc.review.shared.reports import REPORT_CONFIG
 from policyc.runtime import Rule
 
 __all__ = [
@@ -75,6 +77,10 @@ __all__ = [
     "ECE_WARNING",
     "ERROR_DEFINITION",
     "CalibrationReport",
+    "ClassCalibration",
+    "ClassOutcome",
+    "Confusion",
+    "Curve",
     "CurvePoint",
     "Evaluation",
     "ReliabilityBin",
@@ -105,7 +111,7 @@ def error_cells(loss: np.ndarray, n_plain: int) -> np.ndarray:
     return cells
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, config=REPORT_CONFIG)
 class CurvePoint:
     """One point of the risk-reject curve at reject cost ``reject_cost``."""
 
@@ -116,18 +122,8 @@ class CurvePoint:
     accepted_error_rate: float
     own: bool
 
-    def to_json(self) -> dict[str, Any]:
-        return {
-            "reject_cost": self.reject_cost,
-            "risk": self.risk,
-            "reject_rate": self.reject_rate,
-            "error_rate": self.error_rate,
-            "accepted_error_rate": self.accepted_error_rate,
-            "own": self.own,
-        }
 
-
-@dataclass(frozen=True)
+@dataclass(frozen=True, config=REPORT_CONFIG)
 class ReliabilityBin:
     low: float
     high: float
@@ -135,57 +131,80 @@ class ReliabilityBin:
     mean_predicted: float
     observed: float
 
-    def to_json(self) -> dict[str, Any]:
-        return {
-            "low": self.low,
-            "high": self.high,
-            "count": self.count,
-            "mean_predicted": self.mean_predicted,
-            "observed": self.observed,
-        }
+
+@dataclass(frozen=True, config=REPORT_CONFIG)
+class ClassCalibration:
+    class_name: Annotated[str, Field(serialization_alias="class")]
+    ece: float
+    bins: tuple[ReliabilityBin, ...]
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, config=REPORT_CONFIG)
 class CalibrationReport:
     """Per class: a reliability table of the rule's (prior-corrected) posteriors and the ECE."""
 
-    classes: tuple[str, ...]
-    tables: tuple[tuple[ReliabilityBin, ...], ...]
-    ece: tuple[float, ...]
+    class_names: Annotated[tuple[str, ...], Field(exclude=True)]
+    tables: Annotated[tuple[tuple[ReliabilityBin, ...], ...], Field(exclude=True)]
+    ece: Annotated[tuple[float, ...], Field(exclude=True)]
+    binning: str = (
+        "per class, one-vs-rest: 10 equal-width right-closed bins of the rule's posterior P(class | x), "
+        "i.e. the upstream probabilities corrected to the deployment priors"
+    )
+    bins: int = CALIBRATION_BINS
+    ece_warning_above: float = ECE_WARNING
 
+    @computed_field  # type: ignore[prop-decorator]
     @property
     def warning(self) -> bool:
         return max(self.ece) > ECE_WARNING
 
-    def to_json(self) -> dict[str, Any]:
-        return {
-            "binning": (
-                "per class, one-vs-rest: 10 equal-width right-closed bins of the rule's posterior P(class | x), "
-                "i.e. the upstream probabilities corrected to the deployment priors"
-            ),
-            "bins": CALIBRATION_BINS,
-            "ece_warning_above": ECE_WARNING,
-            "warning": self.warning,
-            "classes": [
-                {"class": name, "ece": ece, "bins": [b.to_json() for b in table]}
-                for name, table, ece in zip(self.classes, self.tables, self.ece, strict=True)
-            ],
-        }
+    @computed_field  # type: ignore[prop-decorator]
+    @property
+    def classes(self) -> tuple[ClassCalibration, ...]:
+        return tuple(
+            ClassCalibration(name, ece, table)
+            for name, table, ece in zip(self.class_names, self.tables, self.ece, strict=True)
+        )
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, config=REPORT_CONFIG)
+class ClassOutcome:
+    """How the rows of one true class were decided."""
+
+    class_name: Annotated[str, Field(serialization_alias="class")]
+    rows: int
+    action_shares: dict[str, float]
+    error_rate: float | None
+
+
+@dataclass(frozen=True, config=REPORT_CONFIG)
+class Confusion:
+    counts: list[list[int]]
+    rows: str = "true class"
+    columns: str = "action"
+
+
+@dataclass(frozen=True, config=REPORT_CONFIG)
+class Curve:
+    reach_value: float
+    points: tuple[CurvePoint, ...]
+
+
+@dataclass(frozen=True, config=REPORT_CONFIG)
 class Evaluation:
-    """Everything ``policyc evaluate`` reports (see the module docstring for definitions)."""
+    """Everything ``policyc evaluate`` reports (see the module docstring for definitions); its JSON is this
+    object (schemas/evaluation-report.schema.json)."""
 
-    loaded: LoadedRule
+    loaded: Annotated[LoadedRule, Field(exclude=True)]
     data: str
     label: str
-    confusion: np.ndarray  # (K, A) rows per (true class, action)
+    confusion: Annotated[np.ndarray, Field(exclude=True)]  # (K, A) rows per (true class, action)
     invalid_rows: int
     risk: BootstrapInterval
-    curve: tuple[CurvePoint, ...]
-    reach_value: float
+    curve: Annotated[tuple[CurvePoint, ...], Field(exclude=True)]
+    reach_value: Annotated[float, Field(exclude=True)]
     calibration: CalibrationReport | None
+    error_definition: str = ERROR_DEFINITION
 
     @property
     def rule(self) -> Rule:
@@ -195,6 +214,7 @@ class Evaluation:
     def loss(self) -> np.ndarray:
         return np.asarray(self.rule.params["loss"])
 
+    @computed_field  # type: ignore[prop-decorator]
     @property
     def rows(self) -> int:
         return int(self.confusion.sum())
@@ -212,54 +232,74 @@ class Evaluation:
         # errors_k = Σ_a n[k, a] · [λ(a|k) > min_b λ(b|k)], a over the actions (reject aside)
         return (self.confusion * error_cells(self.loss, self.n_plain).T).sum(axis=1)
 
+    @computed_field  # type: ignore[prop-decorator]
     @property
     def reject_rate(self) -> float:
         return self.rejected / self.rows  # R = deferred rows / all rows
 
+    @computed_field  # type: ignore[prop-decorator]
     @property
     def error_rate(self) -> float:
         return float(self.errors_by_class.sum()) / self.rows  # E = errors / all rows (Chow's E)
 
+    @computed_field  # type: ignore[prop-decorator]
     @property
     def accepted_error_rate(self) -> float:
         accepted = self.rows - self.rejected
         return float(self.errors_by_class.sum()) / accepted if accepted else float("nan")  # errors / accepted rows
 
-    def to_json(self) -> dict[str, Any]:
-        rule = self.rule
-        per_class = []
-        for k, name in enumerate(rule.classes):
+    @computed_field(alias="rule")  # type: ignore[prop-decorator]
+    @property
+    def rule_identity(self) -> RuleIdentity:
+        return identity(self.loaded)
+
+    @computed_field  # type: ignore[prop-decorator]
+    @property
+    def loss_unit(self) -> str | None:
+        return self.rule.manifest.get("loss_unit")
+
+    @computed_field  # type: ignore[prop-decorator]
+    @property
+    def classes(self) -> tuple[str, ...]:
+        return self.rule.classes
+
+    @computed_field  # type: ignore[prop-decorator]
+    @property
+    def actions(self) -> tuple[str, ...]:
+        return self.rule.actions
+
+    @computed_field  # type: ignore[prop-decorator]
+    @property
+    def reject_action(self) -> str | None:
+        return self.rule.reject_action
+
+    @computed_field  # type: ignore[prop-decorator]
+    @property
+    def reject_cost(self) -> float | None:
+        return self.rule.manifest.get("reject_cost")
+
+    @computed_field(alias="confusion")  # type: ignore[prop-decorator]
+    @property
+    def confusion_counts(self) -> Confusion:
+        return Confusion(self.confusion.tolist())
+
+    @computed_field  # type: ignore[prop-decorator]
+    @property
+    def per_class(self) -> tuple[ClassOutcome, ...]:
+        outcomes = []
+        for k, name in enumerate(self.rule.classes):
             count = int(self.confusion[k].sum())
-            shares = self.confusion[k] / count if count else np.full(len(rule.actions), np.nan)  # n[k, a] / n_k
-            per_class.append(
-                {
-                    "class": name,
-                    "rows": count,
-                    "action_shares": dict(zip(rule.actions, shares.tolist(), strict=True)),
-                    "error_rate": float(self.errors_by_class[k] / count) if count else None,
-                }
+            shares = self.confusion[k] / count if count else np.full(len(self.rule.actions), np.nan)  # n[k, a] / n_k
+            error_rate = float(self.errors_by_class[k] / count) if count else None
+            outcomes.append(
+                ClassOutcome(name, count, dict(zip(self.rule.actions, shares.tolist(), strict=True)), error_rate)
             )
-        return {
-            "rule": identity(self.loaded),
-            "data": self.data,
-            "label": self.label,
-            "rows": self.rows,
-            "invalid_rows": self.invalid_rows,
-            "loss_unit": rule.manifest.get("loss_unit"),
-            "classes": list(rule.classes),
-            "actions": list(rule.actions),
-            "reject_action": rule.reject_action,
-            "reject_cost": rule.manifest.get("reject_cost"),
-            "risk": self.risk.to_json(),
-            "error_rate": self.error_rate,
-            "accepted_error_rate": self.accepted_error_rate,
-            "reject_rate": self.reject_rate,
-            "error_definition": ERROR_DEFINITION,
-            "confusion": {"rows": "true class", "columns": "action", "counts": self.confusion.tolist()},
-            "per_class": per_class,
-            "curve": {"reach_value": self.reach_value, "points": [p.to_json() for p in self.curve]},
-            "calibration": self.calibration.to_json() if self.calibration is not None else None,
-        }
+        return tuple(outcomes)
+
+    @computed_field(alias="curve")  # type: ignore[prop-decorator]
+    @property
+    def curve_report(self) -> Curve:
+        return Curve(self.reach_value, self.curve)
 
 
 class _CurveTally:

@@ -15,9 +15,9 @@ Table = Callable[[Sequence[str], Sequence[Sequence[str]]], str]
 
 
 def render_evaluation(evaluation: Evaluation, output_format: str) -> str:
-    """``text``, ``markdown`` or ``json`` (the shape is documented in :mod:`policyc.review.evaluate.evaluation`)."""
+    """``text``, ``markdown`` or ``json`` (the shape: schemas/evaluation-report.schema.json)."""
     if output_format == "json":
-        return dumps(evaluation.to_json())
+        return dumps(evaluation)
     if output_format == "markdown":
         return _markdown(evaluation)
     return _text(evaluation)
@@ -100,7 +100,7 @@ def _calibration_lines(calibration: CalibrationReport, table: Table) -> list[str
         "calibration of the rule's posteriors (the upstream probabilities corrected to the deployment priors) "
         "against the labels; per class, one-vs-rest, 10 equal-width bins of P(class | x):",
     ]
-    for name, bins, ece in zip(calibration.classes, calibration.tables, calibration.ece, strict=True):
+    for name, bins, ece in zip(calibration.class_names, calibration.tables, calibration.ece, strict=True):
         lines.append(f"{name}: expected calibration error {number(ece, 3)}")
         rows = [
             [_bin_label(b.low, b.high), str(b.count), number(b.mean_predicted, 3), number(b.observed, 3)] for b in bins

@@ -12,9 +12,10 @@ same row, so a resample keeps each row's old and new loss together.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-
 import numpy as np
+from pydantic.dataclasses import dataclass
+
+from policyc.review.shared.reports import REPORT_CONFIG
 
 __all__ = ["DEFAULT_CONFIDENCE", "DEFAULT_RESAMPLES", "DEFAULT_SEED", "BootstrapInterval", "categorical_mean_interval"]
 
@@ -25,7 +26,7 @@ DEFAULT_SEED = 0
 METHOD = "percentile bootstrap, rows resampled with replacement (multinomial on category counts)"
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, config=REPORT_CONFIG)
 class BootstrapInterval:
     """A point estimate with its percentile bootstrap interval [low, high]."""
 
@@ -35,17 +36,7 @@ class BootstrapInterval:
     confidence: float
     resamples: int
     seed: int
-
-    def to_json(self) -> dict[str, object]:
-        return {
-            "estimate": self.estimate,
-            "low": self.low,
-            "high": self.high,
-            "confidence": self.confidence,
-            "resamples": self.resamples,
-            "seed": self.seed,
-            "method": METHOD,
-        }
+    method: str = METHOD
 
 
 def categorical_mean_interval(

@@ -11,14 +11,17 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import Literal
+
+from pydantic.dataclasses import dataclass as report
 
 from policyc.language.diagnostics import Diagnostic
 from policyc.language.model import Policy
 from policyc.language.source import SourceDocument
+from policyc.review.shared.reports import REPORT_CONFIG
 from policyc.runtime import Rule, load_rule
 
-__all__ = ["POLICY_SUFFIXES", "LoadedRule", "identity", "load_rule_or_policy"]
+__all__ = ["POLICY_SUFFIXES", "LoadedRule", "RuleIdentity", "identity", "load_rule_or_policy"]
 
 POLICY_SUFFIXES = (".yaml", ".yml")
 
@@ -58,15 +61,27 @@ def load_rule_or_policy(path: str | Path) -> LoadedRule:
     return LoadedRule(file, load_rule(file))
 
 
-def identity(loaded: LoadedRule) -> dict[str, Any]:
-    """What a report says about where a rule came from (JSON-ready)."""
+@report(frozen=True, config=REPORT_CONFIG)
+class RuleIdentity:
+    """What a report says about where a rule came from."""
+
+    source: str
+    kind: Literal["policy", "rule"]
+    policy: str | None
+    revision: int | None
+    content_sha256: str | None
+    policy_sha256: str | None
+    training_sha256: str | None
+
+
+def identity(loaded: LoadedRule) -> RuleIdentity:
     manifest = loaded.rule.manifest
-    return {
-        "source": str(loaded.path),
-        "kind": loaded.kind,
-        "policy": manifest.get("policy"),
-        "revision": manifest.get("revision"),
-        "content_sha256": manifest.get("content_sha256"),
-        "policy_sha256": manifest.get("policy_sha256"),
-        "training_sha256": manifest.get("training_sha256"),
-    }
+    return RuleIdentity(
+        str(loaded.path),
+        "policy" if loaded.kind == "policy" else "rule",
+        manifest.get("policy"),
+        manifest.get("revision"),
+        manifest.get("content_sha256"),
+        manifest.get("policy_sha256"),
+        manifest.get("training_sha256"),
+    )
