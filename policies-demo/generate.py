@@ -77,6 +77,16 @@ def packhouse(rng: np.random.Generator) -> None:
     )
 
 
+def packhouse_reference(rng: np.random.Generator) -> None:
+    """Labelled rows of a past week on the line, for the operating limits of policy-r6.yaml."""
+    rows = _packhouse_rows(rng, 8000, SEASON_MIX)
+    _write(
+        HERE / "packhouse" / "reference.csv",
+        ["item_id", *PACKHOUSE_FEATURES, "grade"],
+        [[f"R{i:05d}", *_fruit_cells(x), g] for i, (g, x) in enumerate(rows)],
+    )
+
+
 def _claims(rng: np.random.Generator, n: int, fraud_rate: float) -> tuple[np.ndarray, np.ndarray]:
     fraud = rng.random(n) < fraud_rate
     score = rng.normal(np.where(fraud, SCORE_SHIFT, 0.0), 1.0)
@@ -123,3 +133,5 @@ if __name__ == "__main__":
     generator = np.random.default_rng(20261201)
     packhouse(generator)
     claims(generator)
+    # its own stream, so adding the reference week left the files above unchanged
+    packhouse_reference(np.random.default_rng(20261206))

@@ -27,21 +27,31 @@ probability at least ``confidence``.
 
 Joint solution (a monotone iteration). Start from μ = 0; sweep the limits in order, and whenever
 limit j fails at the current μ, raise μ_j to the smallest value at which it holds with the other
-multipliers fixed, g_j(μ_{-j}); stop when a whole sweep raises nothing. Proof sketch:
+multipliers fixed, g_j(μ_{-j}); stop when a whole sweep raises nothing. Argument:
 
 1. μ never decreases, and the loop stops only when every limit holds at the current μ (a limit
    that holds needs no raise, and one that fails is raised to where it holds), so a returned μ
-   is feasible.
+   is feasible: the solver never returns a rule under which a limit fails on the reference data.
 2. When each g_j is non-decreasing in the other multipliers (limits that compete for rows: any
    set of caps, and recall floors whose listed actions include the capped actions), every
    iterate stays below every feasible μ* componentwise: μ⁰ = 0 ≤ μ*, and if μᵗ ≤ μ* then
-   μᵗ⁺¹_j = g_j(μᵗ_{-j}) ≤ g_j(μ*_{-j}) ≤ μ*_j. A non-decreasing sequence bounded by μ*
-   converges, and its limit is the componentwise smallest feasible multipliers (Kleene's fixed
-   point on the lattice of multipliers). For other combinations the returned μ is still
+   μᵗ⁺¹_j = g_j(μᵗ_{-j}) ≤ g_j(μ*_{-j}) ≤ μ*_j. So when the loop stops it returns the
+   componentwise least feasible multipliers (the feasible set is closed under componentwise
+   minimum, so this least point exists). For other combinations the returned μ is still
    feasible, and each μ_j was raised only while its own limit failed.
-3. With no feasible μ* (limits that contradict each other) the multipliers rise without end.
-   The loop stops after MAX_ROUNDS sweeps and reports ``limit-infeasible`` naming the limits
-   still rising; it never returns a rule under which a limit fails on the reference data.
+3. g_j is a step function (a row leaves an action only past a strict inequality), so the
+   iterates can creep towards a point that is not feasible: a few rows switch back and forth
+   between two actions, each switch satisfying one limit and breaking the other, while the
+   multipliers rise by the tie margin per sweep (a capped inspector bench and a recall floor that
+   lists it, with a defect on the bench/pack boundary). The solver detects the creep (the decisions
+   after a sweep repeat those after one of the two sweeps before) and jumps along its direction
+   d = μᵗ − μᵗ⁻ᵏ to the first point where a row takes an action it did not take during the cycle
+   (decisions are piecewise constant along the ray, so that point is the least breakpoint), then
+   sweeps again. On the segment skipped only the cycling rows can change, between actions that
+   each failed a limit in the cycle, so the skipped points are argued (not proved) infeasible.
+4. With no feasible μ* (limits that contradict each other) the multipliers rise without end.
+   A jump that finds no breakpoint ahead, or MAX_ROUNDS sweeps, ends with ``limit-infeasible``
+   naming the limits still rising.
 
 A single limit settles in one sweep. Unreachable limits (too few rows for the confidence, rows
 that no multiplier moves: invalid rows, or P(c|x) = 0 exactly) are reported at once.
@@ -84,7 +94,7 @@ __all__ = [
 ]
 
 MAX_ROUNDS = 200
-"""Sweeps of the monotone iteration before limits that keep rising are reported as contradictory."""
+"""Sweeps of the monotone iteration (jumps included) before limits that keep rising are reported as contradictory."""
 TIE_MARGIN = 1e-9
 """A multiplier sits this far (times the loss scale) past the row it must move, so rounding in the runtime's
 risk products cannot put that row back on a tie."""
@@ -326,14 +336,17 @@ def _adjusted(loss: np.ndarray, limits: Sequence[Limit], multipliers: np.ndarray
 
 
 def _solve(loss: np.ndarray, limits: Sequence[Limit], sample: ReferenceSample, delta: float) -> tuple[np.ndarray, int]:
-    """The monotone iteration of the module docstring: (multipliers, sweeps)."""
+    """The monotone iteration of the module docstring, with its jumps: (multipliers, sweeps)."""
     judging = [_judging(limit, sample, delta) for limit in limits]
     multipliers = np.zeros(len(limits))
+    history: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []  # (decisions, multipliers, visited) per sweep
     rising: list[Limit] = []
     for sweep in range(1, MAX_ROUNDS + 1):
         rising = []
+        visited = np.zeros((sample.rows, loss.shape[0]), dtype=bool)  # (row, action) taken during the sweep
         for j, limit in enumerate(limits):
             decisions = _decisions(sample, _adjusted(loss, limits, multipliers))
+            visited[np.arange(sample.rows), decisions] = True
             if _holds(limit, judging[j], sample, decisions):
                 continue
             others = multipliers.copy()
@@ -343,11 +356,56 @@ def _solve(loss: np.ndarray, limits: Sequence[Limit], sample: ReferenceSample, d
             rising.append(limit)
         if not rising:
             return multipliers, sweep
+        decisions = _decisions(sample, _adjusted(loss, limits, multipliers))
+        visited[np.arange(sample.rows), decisions] = True
+        for back, (earlier, earlier_multipliers, _) in enumerate(reversed(history[-2:])):
+            if np.array_equal(decisions, earlier):  # creeping: the same rows cycle while the multipliers rise
+                cycle = visited | np.logical_or.reduce([v for _, _, v in history[len(history) - back - 1 :]])
+                multipliers = _jump(loss, limits, sample, earlier_multipliers, multipliers, cycle)
+                break
+        history.append((decisions, multipliers.copy(), visited))
     names = ", ".join(limit.name for limit in rising)
     raise LimitInfeasible(
         rising,
         f"{names}: the limits pull against each other; their multipliers still rise after {MAX_ROUNDS} sweeps",
     )
+
+
+def _jump(
+    loss: np.ndarray,
+    limits: Sequence[Limit],
+    sample: ReferenceSample,
+    before: np.ndarray,
+    after: np.ndarray,
+    cycling: np.ndarray,
+) -> np.ndarray:
+    """Leave a creeping cycle: follow the ray μ(s) = after + s (after − before) to the first s at which a row
+    changes to an action it did not take during the cycle (``cycling``: (row, action) pairs taken), and step past it.
+
+    Along the ray R'(a|x) grows linearly, R'(a|x; s) = R'(a|x; 0) + s Σ_k D[a, k] P(k|x) with
+    D = Σ_j (after − before)_j M_j, so row i leaves its action c for b at s = (R'(b) − R'(c)) / (slope_c − slope_b).
+    """
+    direction = after - before
+    adjusted = _adjusted(loss, limits, after)
+    risks = _risks(sample, adjusted)
+    chosen = kernel.choose(risks, sample.valid, loss.shape[0] - 1)
+    rows = np.arange(sample.rows)
+    posteriors = np.where(sample.valid[:, None], sample.posteriors, 0.0)
+    slopes = posteriors @ _adjusted(np.zeros_like(loss), limits, direction).T
+    closing = slopes[rows, chosen][:, None] - slopes  # how fast action b gains on the chosen one
+    gap = risks - risks[rows, chosen][:, None]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        crossing = np.where(closing > 0.0, gap / closing, np.inf)
+    crossing[cycling | ~sample.valid[:, None]] = np.inf
+    row, action = np.unravel_index(int(np.argmin(crossing)), crossing.shape)
+    if not np.isfinite(crossing[row, action]):
+        moving = [limit for limit, step in zip(limits, direction, strict=True) if step > 0.0]
+        names = ", ".join(limit.name for limit in moving)
+        raise LimitInfeasible(
+            moving, f"{names}: the limits pull against each other; raising their multipliers further changes nothing"
+        )
+    step = crossing[row, action] + _margin(adjusted) / closing[row, action]
+    return after + step * direction
 
 
 @dataclass(frozen=True)

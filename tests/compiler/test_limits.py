@@ -181,3 +181,42 @@ def test_a_solved_cap_holds_and_its_multiplier_is_the_least(
         lower = solved.adjusted_loss - step * limit.pattern
         chosen = np.argmin(posteriors @ lower.T, axis=1)
         assert np.sum(chosen == action) > allowed_wrong_rows(800, share, 1.0 - confidence)
+
+
+def recall_limit(class_index: int, listed: list[int], share: float, n_actions: int, n_classes: int) -> Limit:
+    counted = np.isin(np.arange(n_actions), listed)
+    pattern = np.zeros((n_actions, n_classes))
+    pattern[~counted, class_index] = 1.0
+    return Limit("min_recall", f"c{class_index}", share, counted, pattern, class_index)
+
+
+@settings(max_examples=30, deadline=None)
+@given(
+    seed=st.integers(0, 10_000),
+    cap=st.floats(0.02, 0.3),
+    recall=st.floats(0.5, 0.98),
+    listed=st.lists(st.integers(0, 2), min_size=1, max_size=2, unique=True),
+)
+def test_joint_limits_hold_or_are_refused(seed: int, cap: float, recall: float, listed: list[int]) -> None:
+    """A cap on deferring and a recall floor that lists the reject action (the bench/pack creep of the
+    packhouse demo): whatever the numbers, the solver returns multipliers under which both hold at their
+    bounds, or refuses; it never returns a rule that breaks a limit."""
+    from policyc.compiler.limits import LimitInfeasible
+
+    rng = np.random.default_rng(seed)
+    n = 1500
+    posteriors = rng.dirichlet([0.6, 0.6, 0.6], size=n)
+    labels = (rng.random(n)[:, None] > np.cumsum(posteriors, axis=1)).sum(axis=1)
+    stated = np.vstack([rng.uniform(0.0, 10.0, size=(3, 3)), np.full(3, 1.5)])
+    sample = ReferenceSample("r", "0" * 64, posteriors, np.ones(n, bool), labels)
+    limits = [cap_limit(3, cap, 4, 3), recall_limit(2, [*listed, 3], recall, 4, 3)]
+    try:
+        solved = solve_limits(stated, limits, sample, 0.9, "y")
+    except LimitInfeasible as refused:
+        assert refused.limits
+        return
+    decided = np.argmin(posteriors @ solved.adjusted_loss.T, axis=1)
+    share, caught = np.mean(decided == 3), np.mean(np.isin(decided[labels == 2], [*listed, 3]))
+    held, floor = solved.outcomes
+    assert share == pytest.approx(held.rate) and held.bound <= cap + 1e-9
+    assert caught == pytest.approx(floor.rate) and floor.bound >= recall - 1e-9
