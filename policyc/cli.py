@@ -300,6 +300,12 @@ def compile_command(policy: Path, rule_file: Path, module_file: Path | None) -> 
         click.echo(render_text(compiled.diagnostics), err=True)
     digest = write_artefact(compiled.rule, rule_file)
     click.echo(f"compiled {compiled.policy.policy} r{compiled.policy.revision} -> {rule_file} (sha256 {digest})")
+    limits = compiled.rule.manifest.get("limits")
+    if limits is not None:
+        from policyc.render import limits_text
+
+        rule = compiled.rule
+        click.echo(limits_text(limits, compiled.policy.loss_unit, rule.actions, rule.classes))
     if module_file is not None:
         write_module(compiled.rule, module_file)
         click.echo(f"standalone module -> {module_file}")

@@ -14,6 +14,7 @@ __all__ = [
     "dumps",
     "format_matrix",
     "format_number",
+    "limits_text",
     "markdown_table",
     "number",
     "rounded",
@@ -106,3 +107,41 @@ def format_matrix(
     header = [f"{row_axis} \\ {column_axis}", *column_names]
     body = [[name, *(format_number(float(v)) for v in row)] for name, row in zip(row_names, values, strict=True)]
     return text_table(header, body, indent="")
+
+
+def _stated_limit(figures: dict[str, Any]) -> str:
+    if figures["kind"] == "max_share":
+        return f"at most {share(figures['share'])} get {figures['subject']}"
+    return f"at least {share(figures['share'])} of {figures['subject']} get {' or '.join(figures['actions'])}"
+
+
+def limits_text(record: dict[str, Any], unit: str | None, actions: Sequence[str], classes: Sequence[str]) -> str:
+    """A manifest's ``limits`` record for people: per limit the rate, bound, multiplier and price; L'.
+
+    ``actions`` (reject last) and ``classes`` give the order of L' (the manifest's JSON keys are sorted)."""
+    per, both = record["per_limit_confidence"], record["confidence"]
+    money = f" ({unit})" if unit else ""
+    rows = [
+        [
+            _stated_limit(f),
+            share(f["rate"]),
+            ("≤ " if f["kind"] == "max_share" else "≥ ") + share(f["bound"]),
+            number(f["multiplier"]),
+            number(f["price"]),
+        ]
+        for f in record["limits"]
+    ]
+    header = ["limit", "rate", f"bound ({100 * per:.4g}%)", "multiplier", f"price{money}"]
+    adjusted = np.array([[record["adjusted_loss"][a][c] for c in classes] for a in actions])
+    return "\n".join(
+        [
+            f"operating limits on {record['data']} ({record['rows']} rows): each holds on new data with "
+            f"probability ≥ {100 * per:.4g}%, all together ≥ {100 * both:.4g}%",
+            text_table(header, rows),
+            f"  price of all limits together: {number(record['price'])} {unit or 'per row'} "
+            f"(expected loss {number(record['expected_loss_unlimited'])} -> {number(record['expected_loss_limited'])})",
+            "",
+            "adjusted loss L' = L + Σ_j μ_j M_j, the matrix the rule decides by, loss[action][true class]:",
+            format_matrix(adjusted, actions, classes, "action", "true class"),
+        ]
+    )

@@ -270,3 +270,17 @@ def test_tampered_rule_file_exits_1_naming_the_hash(packhouse_file: Path, tmp_pa
     result = run("inspect", tampered)
     assert result.exit_code == 1
     assert "content hash mismatch" in result.output
+
+
+def test_compile_reports_the_limits_as_in_the_demo_report(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """policies-demo/packhouse/policy-r6.compile.txt is what compile prints (the content hash aside)."""
+    monkeypatch.chdir(tmp_path)
+    result = run("compile", DEMOS / "packhouse" / "policy-r6.yaml", "-o", "packhouse-r6.rule")
+    assert result.exit_code == 0, result.output
+    stored = (DEMOS / "packhouse" / "policy-r6.compile.txt").read_text(encoding="utf-8")
+    without_hash = re.compile(r"sha256 [0-9a-f]{64}")
+    assert without_hash.sub("sha256 …", result.output) == without_hash.sub("sha256 …", stored)
+    record = load_rule(tmp_path / "packhouse-r6.rule").manifest["limits"]
+    cap, recall = record["limits"]
+    assert cap["rate"] <= 0.05 and recall["rate"] >= 0.99
+    assert 0.0 <= cap["price"] and 0.0 <= recall["price"] <= record["price"]
