@@ -283,4 +283,4 @@ def test_compile_reports_the_limits_as_in_the_demo_report(tmp_path: Path, monkey
     record = load_rule(tmp_path / "packhouse-r6.rule").manifest["limits"]
     cap, recall = record["limits"]
     assert cap["rate"] <= 0.05 and recall["rate"] >= 0.99
-    assert 0.0 <= cap["price"] and 0.0 <= recall["price"] <= record["price"]
+    assert cap["price"] >= 0.0 and 0.0 <= recall["price"] <= record["price"]
