@@ -72,11 +72,14 @@ def _copied_code() -> tuple[list[str], str]:
 
 
 def _import_block(imports: list[str]) -> str:
-    """Import lines grouped as isort does: ``__future__``, the standard library, then numpy."""
+    """Import lines grouped and ordered as isort does: ``__future__``, the standard library, then numpy;
+    ``import x`` lines before ``from x import y`` lines in each group."""
     groups: dict[int, list[str]] = {}
     for line in imports:
         groups.setdefault(0 if "__future__" in line else 2 if "numpy" in line else 1, []).append(line)
-    return "\n\n".join("\n".join(sorted(groups[key])) for key in sorted(groups))
+    return "\n\n".join(
+        "\n".join(sorted(groups[key], key=lambda line: (line.startswith("from "), line))) for key in sorted(groups)
+    )
 
 
 def _header(rule: Rule) -> str:

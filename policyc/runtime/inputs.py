@@ -14,7 +14,9 @@ Accepted input:
   feature column that is absent or appears more than once is refused by name.
   The table libraries are recognised by their attributes, never imported.
 
-Missing values (None, nulls, pandas NA, masked entries, NaN) become NaN, which
+Numbers are Python and numpy integers and floats, fractions and decimals (a Parquet
+decimal column), widened to float64. Missing values (None, nulls, pandas NA,
+masked entries, NaN) become NaN, which
 every kernel treats as invalid input, so such a row follows ``invalid_input``.
 Booleans, text, dates and complex numbers are refused rather than guessed at: a
 boolean column taken as 0/1 or text parsed as numbers would decide on values the
@@ -23,6 +25,8 @@ caller never wrote.
 
 from __future__ import annotations
 
+import decimal
+import numbers
 from typing import Any
 
 import numpy as np
@@ -194,13 +198,15 @@ def _number(value: object, what: str) -> float:
         return float("nan")
     if isinstance(value, bool | np.bool_):
         raise InputError(f"{what} must be a number, got bool {value!r}: booleans are refused; pass 0.0 or 1.0")
-    if not isinstance(value, int | float | np.integer | np.floating):
+    if not isinstance(value, numbers.Real | decimal.Decimal):  # Real: int, float, Fraction, numpy's numbers
         shown = repr(value) if len(repr(value)) <= 40 else repr(value)[:37] + "..."
         raise InputError(f"{what} must be a number, got {type(value).__name__} {shown}")
     try:
         return float(value)
-    except OverflowError:  # a Python int beyond float64; its size in bits, since str() refuses very long ints
-        raise InputError(f"{what} is an integer of {int(value).bit_length()} bits, beyond the float64 range") from None
+    except OverflowError:  # an int or fraction beyond float64; its size in bits, since str() refuses very long ints
+        magnitude: Any = abs(value)
+        bits = int(magnitude).bit_length()
+        raise InputError(f"{what} is an integer of {bits} bits, beyond the float64 range") from None
 
 
 def _listed(names: list[Any]) -> str:

@@ -12,6 +12,8 @@ import re
 from collections import Counter
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
+from decimal import Decimal
+from fractions import Fraction
 from pathlib import Path
 from types import ModuleType
 
@@ -91,6 +93,11 @@ def columns(X: np.ndarray, order: tuple[str, ...] = FEATURES) -> dict[str, np.nd
     return {name: X[:, FEATURES.index(name)] for name in order}
 
 
+def money(values: np.ndarray) -> list[Decimal | None]:
+    """Values as decimals with two places, the first one missing (a Parquet decimal column with a null)."""
+    return [None, *(Decimal(f"{v:.2f}") for v in values[1:])]
+
+
 SHUFFLED = ("brix", "firmness_n", "mass_g", "blush_frac")
 SUBNORMAL = 5e-324
 
@@ -126,6 +133,14 @@ CASES: dict[str, Case] = {
         lambda X: pa.RecordBatch.from_pydict({**columns(X), "x": np.zeros(len(X))}), lambda X: X
     ),
     "mapping, shuffled": Case(lambda X: columns(X, SHUFFLED), lambda X: X),
+    "pyarrow decimal column with null": Case(
+        lambda X: pa.table({**columns(X), "brix": pa.array(money(X[:, 3]), type=pa.decimal128(6, 2))}),
+        lambda X: np.column_stack([X[:, :3], [np.nan if v is None else float(v) for v in money(X[:, 3])]]),
+    ),
+    "fractions": Case(
+        lambda X: np.array([[Fraction(v).limit_denominator(1000) for v in row] for row in X], dtype=object),
+        lambda X: np.array([[float(Fraction(v).limit_denominator(1000)) for v in row] for row in X]),
+    ),
     # refused, each with the documented message
     "narrow": Case(lambda X: X[:, :3], refused="expected 4 feature columns, got 3"),
     "wide": Case(lambda X: np.column_stack([X, X[:, 0]]), refused="expected 4 feature columns, got 5"),

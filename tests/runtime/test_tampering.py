@@ -23,6 +23,8 @@ from typing import Any
 import numpy as np
 import pytest
 from helpers import PACKHOUSE, gaussian_rule, random_spd
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from policyc.compiler.artefact import artefact_bytes
 from policyc.compiler.build import compile_policy
@@ -139,6 +141,23 @@ def test_truncations_and_junk_around_the_archive_are_refused(
         "tampering, truncations and junk appended or prepended",
         {"tried": len(truncated) + len(wrapped), "refused": counts["refused"], "loaded": counts["loaded"]},
     )
+
+
+@settings(max_examples=400, deadline=None)
+@given(
+    edits=st.lists(
+        st.tuples(st.floats(0.0, 1.0), st.integers(0, 64), st.binary(max_size=64)),  # where, cut, insert
+        min_size=1,
+        max_size=4,
+    )
+)
+def test_random_splices_are_refused(demo: bytes, edits: list[tuple[float, int, bytes]]) -> None:
+    """Any mix of cuts and insertions anywhere (several bytes at once, lengths changed) is refused."""
+    data = demo
+    for where, cut, insert in edits:
+        start = int(where * len(data))
+        data = data[:start] + insert + data[start + cut :]
+    assert outcome(data) == ("loaded" if data == demo else "refused")
 
 
 def reordered(data: bytes) -> bytes:
