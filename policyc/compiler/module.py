@@ -136,6 +136,8 @@ PARAMS = {{
 """
     api = '''
 
+PLAN = plan(EVIDENCE, PARAMS)
+
 # --- public API ---
 
 
@@ -145,18 +147,21 @@ def posteriors(X: object) -> np.ndarray:
     X: a 2-D array with columns in FEATURES order, or a table with named columns (pandas or polars
     DataFrame, pyarrow Table or RecordBatch, mapping of column name to 1-D array), read by name.
     """
-    return evaluate(X, EVIDENCE, PARAMS, FEATURES, INVALID_INPUT)[0]
+    return evaluate(X, EVIDENCE, PLAN, FEATURES, INVALID_INPUT)[0]
 
 
 def risks(X: object) -> np.ndarray:
     """Conditional risks R(a | x), shape (n, len(ACTIONS)), reject last; X as for posteriors."""
-    return evaluate(X, EVIDENCE, PARAMS, FEATURES, INVALID_INPUT)[1]
+    return evaluate(X, EVIDENCE, PLAN, FEATURES, INVALID_INPUT)[1]
 
 
 def decide(X: object) -> np.ndarray:
     """Index into ACTIONS of the minimum-risk action per row; X as for posteriors."""
-    _, conditional_risks, valid = evaluate(X, EVIDENCE, PARAMS, FEATURES, INVALID_INPUT)
-    return choose(conditional_risks, valid, len(ACTIONS) - 1)
+    prepared = feature_matrix(X, FEATURES)
+    actions, valid = decide_matrix(prepared, EVIDENCE, PLAN, len(ACTIONS) - 1)
+    if INVALID_INPUT == "error" and not valid.all():
+        raise InputError(invalid_rows_message(valid, prepared=prepared, features=FEATURES))
+    return actions
 '''
     return _header(rule) + constants + copied + api
 

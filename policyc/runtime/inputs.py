@@ -64,6 +64,10 @@ def record_row(record: object, features: tuple[str, ...]) -> np.ndarray:
 
     Unlike a table, a record may hold no other fields: a misspelt name is an error, not an ignored column.
     """
+    if type(record) is dict and len(record) == len(features):  # the common case, checked in one pass
+        values = [record.get(name) for name in features]
+        if all(type(value) is float for value in values):  # then every feature is present, so nothing else is
+            return np.array(values)
     if _table_kind(record) != "mapping":
         raise InputError(f"expected one record as a mapping of feature name to number, got {type(record).__name__}")
     fields: Any = record

@@ -31,39 +31,129 @@ REASONS = ("min-risk", "invalid")
 cost is the minimum: Chow's ambiguity reject), or invalid input sent to the reject action."""
 
 
+def plan(evidence: str, params: dict[str, np.ndarray], dtype: type = np.float64) -> dict[str, np.ndarray]:
+    """The artefact's arrays plus what the kernels derive from them once per rule, in ``dtype``.
+
+    The derived entries fold constants out of the per-row work, and pick the cheapest exact form of the
+    Gaussian scores for the covariance structure the arrays have (see :func:`gaussian_scores`):
+    ``loss_t`` (K, A) = λᵀ; ``constant_rows`` marks the reject row, whose risk is exactly its cost; for
+    gaussian evidence ``form`` is 0 (full), 1 (tied: every L_k⁻¹ equal) or 2 (diagonal: every L_k⁻¹ diagonal).
+    """
+    derived: dict[str, np.ndarray] = {name: np.asarray(array, dtype=dtype) for name, array in params.items()}
+    loss = params["loss"]
+    derived["loss_t"] = np.ascontiguousarray(loss.T, dtype=dtype)
+    derived["constant_rows"] = (loss == loss[:, :1]).all(axis=1)
+    derived["constant_costs"] = loss[derived["constant_rows"], 0].astype(dtype)
+    derived["constant_index"] = np.flatnonzero(derived["constant_rows"])
+    derived["loss_t_sum"] = np.hstack([loss.T, np.ones((loss.shape[1], 1))]).astype(dtype)  # [λᵀ, 1]
+    if evidence == "gaussian":
+        derived |= {name: array.astype(dtype) for name, array in _gaussian_plan(params).items()}
+    return derived
+
+
+def _gaussian_plan(params: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
+    """Folded arrays for the three covariance structures (tied and diagonal detected from the arrays)."""
+    n_classes = params["log_normalisers"].shape[0]
+    n_features = params["whitening"].shape[1]
+    blocks = params["whitening"].reshape(n_classes, n_features, n_features)  # L_k⁻¹, one per class
+    means = params["whitened_means"].reshape(n_classes, n_features)  # m_k = L_k⁻¹(μ_k - c)
+    # score_k = ln P(k) + ln N(x; μ_k, Σ_k) (up to a per-row constant in the tied form)
+    constant = params["log_priors"] + params["log_normalisers"]
+    if all(np.array_equal(block, blocks[0]) for block in blocks[1:]):
+        # tied: ‖z - m_k‖² = ‖z‖² - 2 m_k·z + ‖m_k‖², z = L⁻¹(x - c); ‖z‖² is the same for every class
+        return {
+            "form": np.array(1.0),
+            "whitening_t": np.ascontiguousarray(blocks[0].T),
+            "linear": np.ascontiguousarray(means.T),  # (d, K): m_k·z for every class in one product
+            "offset": constant - 0.5 * (means * means).sum(axis=1),  # ln P(k) + ln c_k - ½‖m_k‖²
+        }
+    diagonals = np.einsum("kjj->kj", blocks)  # s_k = diag L_k⁻¹ = 1/σ_k
+    if np.array_equal(blocks, diagonals[:, :, None] * np.eye(n_features)):
+        # diagonal: ‖s_k∘(x - c) - m_k‖² = Σ_j s_kj² x'_j² - 2 s_kj m_kj x'_j + m_kj², x' = x - c
+        quadratic = np.concatenate([(diagonals * diagonals).T, (-2.0 * diagonals * means).T])  # (2d, K)
+        return {
+            "form": np.array(2.0),
+            "quadratic": -0.5 * quadratic,
+            "offset": constant - 0.5 * (means * means).sum(axis=1),
+        }
+    return {
+        "form": np.array(0.0),
+        "augmented": augmented_whitening(params),
+        "whitening_t": np.ascontiguousarray(params["whitening"].T),  # (d, K·d), for one row at a time
+        "block_sums": -0.5 * np.kron(np.eye(n_classes), np.ones((n_features, 1))),  # (K·d, K): -½ Σ over each block
+        "offset": constant,
+    }
+
+
 def evaluate(
-    X: object, evidence: str, params: dict[str, np.ndarray], features: tuple[str, ...], invalid_input: str
+    X: object, evidence: str, rule_plan: dict[str, np.ndarray], features: tuple[str, ...], invalid_input: str
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Posteriors, risks and validity for raw input; raise InputError on invalid rows under "error"."""
     prepared = feature_matrix(X, features)
-    posteriors, risks, valid = posteriors_and_risks(prepared, evidence, params)
+    posteriors, risks, valid = posteriors_and_risks(prepared, evidence, rule_plan)
     if invalid_input == "error" and not valid.all():
         raise InputError(invalid_rows_message(valid, prepared=prepared, features=features))
     return posteriors, risks, valid
 
 
+def augmented_whitening(params: dict[str, np.ndarray]) -> np.ndarray:
+    """[L_1⁻ᵀ … L_K⁻ᵀ; -m_1 … -m_K], shape (d + 1, K·d), so [x - c, 1] times it is z_k = L_k⁻¹(x - c) - m_k for
+    every class in one product (m_k = L_k⁻¹(μ_k - c) is folded in as the row for the constant column)."""
+    return np.ascontiguousarray(np.vstack([params["whitening"].T, -params["whitened_means"]]))
+
+
+def squared_distances(
+    X: np.ndarray, centre: np.ndarray, augmented: np.ndarray, n_classes: int, out: np.ndarray | None = None
+) -> np.ndarray:
+    """Squared Mahalanobis distance of every row to every class, shape (n, K), for any covariance structure.
+
+    ‖L_k⁻¹(x - μ_k)‖² with z_k = L_k⁻¹(x - c) - L_k⁻¹(μ_k - c) around a common centre c against cancellation;
+    all classes share one product [x - c, 1] (d + 1 × K·d) with :func:`augmented_whitening`.
+    """
+    centred = np.empty((X.shape[0], X.shape[1] + 1), dtype=augmented.dtype)
+    np.subtract(X, centre, out=centred[:, :-1])
+    centred[:, -1] = 1.0
+    stacked = (centred @ augmented).reshape(X.shape[0], n_classes, -1)
+    return np.einsum("nkd,nkd->nk", stacked, stacked, out=out)
+
+
 def gaussian_log_likelihoods(X: np.ndarray, params: dict[str, np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
-    """ln N(x; μ_k, Σ_k) for every class, and which rows could be evaluated.
+    """ln N(x; μ_k, Σ_k) for every class, and which rows hold only finite values.
 
     ln N(x; μ_k, Σ_k) = -½‖L_k⁻¹(x - μ_k)‖² - Σ_i ln (L_k)_ii - (d/2) ln 2π  (Σ_k = L_k L_kᵀ);
-    log_normalisers holds the last two terms. All classes share one matrix product.
+    log_normalisers holds the last two terms.
     """
-    whitening = params["whitening"]
-    n_classes = params["log_normalisers"].shape[0]
-    n_features = whitening.shape[1]
-    # z = L_k⁻¹(x - c) - L_k⁻¹(μ_k - c) = L_k⁻¹(x - μ_k), with c a common centre against cancellation.
-    # Rows holding NaN or ±inf (inf·0 in the product) are marked invalid by the isfinite mask below, and rows
-    # so large that every squared distance overflows get -inf everywhere and are marked invalid by _chunk;
-    # their floating-point warnings are expected, so they are silenced rather than raised under -W error.
     with np.errstate(invalid="ignore", over="ignore"):
-        z = (X - params["centre"]) @ whitening.T - params["whitened_means"]
-        squared = np.einsum("nkd,nkd->nk", z.reshape(-1, n_classes, n_features), z.reshape(-1, n_classes, n_features))
-    log_likelihoods = params["log_normalisers"] - 0.5 * squared
+        squared = squared_distances(X, params["centre"], augmented_whitening(params), params["log_normalisers"].size)
+        log_likelihoods = params["log_normalisers"] - 0.5 * squared
     return log_likelihoods, np.isfinite(X).all(axis=1)
 
 
-def posterior_log_likelihoods(X: np.ndarray, params: dict[str, np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
-    """Upstream posteriors as log-likelihoods up to a per-row constant, and which rows are valid.
+def gaussian_scores(X: np.ndarray, rule_plan: dict[str, np.ndarray], out: np.ndarray) -> np.ndarray:
+    """ln P(k) + ln N(x; μ_k, Σ_k) for every class into ``out`` (n, K), up to a per-row constant.
+
+    Full covariance: -½ :func:`squared_distances` plus ln P(k) and the normalisers. Tied: the common
+    -½‖L⁻¹(x - c)‖² cancels in the posteriors, leaving m_k·L⁻¹(x - c), linear in x (one d × d and one
+    d × K product: Fukunaga 1990, eq. 3.115 for the linear form). Diagonal: [x'², x'] with x' = x - c,
+    one (2d × K) product. A row holding NaN or ±inf gives a non-finite best score (every class's block
+    has a non-zero diagonal), which :func:`_chunk` marks invalid; so does a finite row far enough out
+    that every score overflows.
+    """
+    form = rule_plan["form"]
+    centred = X - rule_plan["centre"]
+    if form == 1.0:
+        np.matmul(centred @ rule_plan["whitening_t"], rule_plan["linear"], out=out)
+    elif form == 2.0:
+        np.matmul(np.concatenate([centred * centred, centred], axis=1), rule_plan["quadratic"], out=out)
+    else:
+        squared_distances(X, rule_plan["centre"], rule_plan["augmented"], out.shape[1], out=out)
+        out *= -0.5
+    out += rule_plan["offset"]
+    return out
+
+
+def posterior_scores(X: np.ndarray, rule_plan: dict[str, np.ndarray], out: np.ndarray) -> np.ndarray:
+    """Upstream posteriors as ln P̃(k) + ln p(x|k) up to a per-row constant, into ``out``; invalid rows NaN.
 
     p(x|k) ∝ p(k|x) / π_k with π the priors the upstream model was trained under, so
     ln p(k|x) - ln π_k + ln π̃_k gives the posterior under new priors π̃ after normalising
@@ -72,14 +162,16 @@ def posterior_log_likelihoods(X: np.ndarray, params: dict[str, np.ndarray]) -> t
     sums = X.sum(axis=1)
     finite = np.isfinite(X).all(axis=1)
     in_range = ((X >= 0.0) & (X <= 1.0)).all(axis=1)
-    if params["renormalise"] > 0.0:
+    if rule_plan["renormalise"] > 0.0:
         X = X / np.where(sums > 0.0, sums, 1.0)[:, None]
         valid = finite & (X >= 0.0).all(axis=1) & (sums > 0.0)
     else:
-        valid = finite & in_range & (np.abs(sums - 1.0) <= params["sum_tolerance"])
+        valid = finite & in_range & (np.abs(sums - 1.0) <= rule_plan["sum_tolerance"])
     with np.errstate(divide="ignore", invalid="ignore"):
-        log_likelihoods = calibrated_log_probabilities(X, params) - params["log_trained_priors"]
-    return log_likelihoods, valid
+        out[:] = calibrated_log_probabilities(X, rule_plan)
+    out += rule_plan["log_priors"] - rule_plan["log_trained_priors"]
+    out[~valid] = np.nan
+    return out
 
 
 def calibrated_log_probabilities(P: np.ndarray, params: dict[str, np.ndarray]) -> np.ndarray:
@@ -106,55 +198,121 @@ def calibrated_log_probabilities(P: np.ndarray, params: dict[str, np.ndarray]) -
     return z @ params["calibration_weights"].T + params["calibration_bias"]
 
 
-def supplied_log_likelihoods(X: np.ndarray, params: dict[str, np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
-    """Per-class ln p(x|k) computed elsewhere; +inf is invalid, -inf means impossible."""
-    valid = ~np.isnan(X).any(axis=1) & ~np.isposinf(X).any(axis=1)
-    return X, valid
+def supplied_scores(X: np.ndarray, rule_plan: dict[str, np.ndarray], out: np.ndarray) -> np.ndarray:
+    """Per-class ln p(x|k) computed elsewhere, plus ln P(k); +inf and NaN are invalid, -inf means impossible."""
+    np.add(X, rule_plan["log_priors"], out=out)
+    out[np.isposinf(X).any(axis=1)] = np.nan
+    return out
 
 
-LOG_LIKELIHOODS = {
-    "gaussian": gaussian_log_likelihoods,
-    "posterior": posterior_log_likelihoods,
-    "log-likelihood": supplied_log_likelihoods,
+SCORES = {
+    "gaussian": gaussian_scores,
+    "posterior": posterior_scores,
+    "log-likelihood": supplied_scores,
 }
 
 
 def posteriors_and_risks(
-    X: np.ndarray, evidence: str, params: dict[str, np.ndarray]
+    X: np.ndarray, evidence: str, rule_plan: dict[str, np.ndarray]
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Posteriors (n, K), conditional risks (n, A) and a validity mask (n,) for prepared input.
 
-    Rows that are not valid hold NaN. Work proceeds in chunks of CHUNK_ROWS rows.
+    Rows that are not valid hold NaN. Work proceeds in chunks of CHUNK_ROWS rows, as in :func:`decide_rows`,
+    so both give the same decisions to the bit.
     """
     n_rows = X.shape[0]
-    n_classes = params["log_priors"].shape[0]
-    posteriors = np.empty((n_rows, n_classes))
-    risks = np.empty((n_rows, params["loss"].shape[0]))
+    posteriors = np.empty((n_rows, rule_plan["log_priors"].shape[0]), dtype=rule_plan["loss_t"].dtype)
+    risks = np.empty((n_rows, rule_plan["loss_t"].shape[1]), dtype=rule_plan["loss_t"].dtype)
     valid = np.empty(n_rows, dtype=bool)
     for start in range(0, n_rows, CHUNK_ROWS):
         rows = slice(start, start + CHUNK_ROWS)
-        posteriors[rows], risks[rows], valid[rows] = _chunk(X[rows], evidence, params)
+        valid[rows] = _chunk(X[rows], evidence, rule_plan, posteriors[rows], risks[rows])
+        posteriors[rows][~valid[rows]] = np.nan
+        risks[rows][~valid[rows]] = np.nan
     return posteriors, risks, valid
 
 
-def _chunk(X: np.ndarray, evidence: str, params: dict[str, np.ndarray]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    log_likelihoods, valid = LOG_LIKELIHOODS[evidence](X, params)
-    # ln P(k|x) = ln p(x|k) + ln P(k) - logsumexp_j(ln p(x|j) + ln P(j)); subtract the row max first
-    with np.errstate(invalid="ignore"):
-        joint = log_likelihoods + params["log_priors"]
-        top = joint.max(axis=1, keepdims=True)
-        valid = valid & np.isfinite(top[:, 0])
-        joint = np.where(valid[:, None], joint - top, 0.0)
-    unnormalised = np.exp(joint)
-    posteriors = unnormalised / unnormalised.sum(axis=1, keepdims=True)
+def decide_rows(
+    X: np.ndarray, evidence: str, rule_plan: dict[str, np.ndarray], invalid_action: int
+) -> tuple[np.ndarray, np.ndarray]:
+    """The action index and validity per row of prepared input, each shape (n,): :func:`choose` on
+    :func:`posteriors_and_risks`, without keeping n-long posteriors and risks (chunk-sized buffers are reused)."""
+    n_rows = X.shape[0]
+    posteriors = np.empty((min(n_rows, CHUNK_ROWS), rule_plan["log_priors"].shape[0]), rule_plan["loss_t"].dtype)
+    risks = np.empty((posteriors.shape[0], rule_plan["loss_t"].shape[1]), rule_plan["loss_t"].dtype)
+    actions = np.empty(n_rows, dtype=np.intp)
+    valid = np.empty(n_rows, dtype=bool)
+    for start in range(0, n_rows, CHUNK_ROWS):
+        rows = slice(start, start + CHUNK_ROWS)
+        size = min(CHUNK_ROWS, n_rows - start)
+        valid[rows] = _chunk(X[rows], evidence, rule_plan, posteriors[:size], risks[:size])
+        actions[rows] = choose(risks[:size], valid[rows], invalid_action)
+    return actions, valid
+
+
+def _chunk(
+    X: np.ndarray, evidence: str, rule_plan: dict[str, np.ndarray], posteriors: np.ndarray, risks: np.ndarray
+) -> np.ndarray:
+    """Posteriors and risks of one chunk into the given buffers; returns which rows are valid.
+
+    A valid row's posteriors are finite; an invalid row's buffers hold arbitrary values.
+    """
+    dtype = rule_plan["loss_t"].dtype
+    with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
+        scores = SCORES[evidence](X.astype(dtype, copy=False), rule_plan, posteriors)
+        # P(k|x) = exp(s_k - max_j s_j) / Σ_i exp(s_i - max_j s_j): the row max first, pairwise over columns
+        top = scores[:, 0].copy()
+        for k in range(1, scores.shape[1]):
+            np.maximum(top, scores[:, k], out=top)  # NaN propagates, so a NaN score marks the row invalid
+        valid = np.isfinite(top)
+        scores -= top[:, None]
+        np.exp(scores, out=scores)
+        scores /= scores.sum(axis=1, keepdims=True)
     # R(a|x) = Σ_k λ(a|k) P(k|x)   (Duda, Hart & Stork 2001, §2.2; Fukunaga 1990, eq. 3.19)
-    risks = posteriors @ params["loss"].T
+    np.matmul(scores, rule_plan["loss_t"], out=risks)
     # a constant row (the reject option) has risk exactly d, not d·ΣP(k|x) with ΣP = 1 ± ε
-    constant = (params["loss"] == params["loss"][:, :1]).all(axis=1)
-    risks[:, constant] = params["loss"][constant, 0]
-    posteriors[~valid] = np.nan
-    risks[~valid] = np.nan
-    return posteriors, risks, valid
+    constant = rule_plan["constant_rows"]
+    if constant.any():
+        risks[:, constant] = rule_plan["constant_costs"]
+    return valid
+
+
+def decide_matrix(
+    X: np.ndarray, evidence: str, rule_plan: dict[str, np.ndarray], invalid_action: int
+) -> tuple[np.ndarray, np.ndarray]:
+    """Actions and validity for prepared input: :func:`decide_row` for one row, else :func:`decide_rows`."""
+    if X.shape[0] == 1:
+        action, valid = decide_row(X[0], evidence, rule_plan, invalid_action)
+        return np.array([action]), np.array([valid])
+    return decide_rows(X, evidence, rule_plan, invalid_action)
+
+
+def decide_row(x: np.ndarray, evidence: str, rule_plan: dict[str, np.ndarray], invalid_action: int) -> tuple[int, bool]:
+    """The action index for one prepared row ``x`` of shape (d,), and whether the row was valid.
+
+    The same formulas as :func:`_chunk` on 1-D arrays, with no chunk machinery, for services that decide one
+    request at a time. Decisions equal the batch path's except where the two smallest risks are within a few
+    ulps of each other (a one-row product may sum in another order than a many-row one).
+    """
+    with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
+        if evidence == "gaussian" and rule_plan["form"] == 0.0:
+            z = (x - rule_plan["centre"]) @ rule_plan["whitening_t"]
+            z -= rule_plan["whitened_means"]
+            z *= z
+            scores = z @ rule_plan["block_sums"]  # -½‖z_k‖² per class
+            scores += rule_plan["offset"]
+        else:
+            scores = SCORES[evidence](x[None, :], rule_plan, np.empty((1, rule_plan["loss_t"].shape[0])))[0]
+        top = scores.max()  # NaN propagates (a NaN score of one class makes the row invalid, as in _chunk)
+        if top - top != 0.0:  # NaN or ±inf: the row is invalid (see gaussian_scores)
+            return invalid_action, False
+        # R(a|x) = Σ_k λ(a|k) P(k|x) with P(k|x) = exp(s_k - max_j s_j) / Σ_i exp(s_i - max_j s_j): one product
+        # with [λᵀ, 1] gives every unnormalised risk and the normaliser
+        unnormalised = np.exp(scores - top) @ rule_plan["loss_t_sum"]
+        risks = (unnormalised[:-1] / unnormalised[-1]).tolist()
+    for index, cost in zip(rule_plan["constant_index"].tolist(), rule_plan["constant_costs"].tolist(), strict=True):
+        risks[index] = cost  # the reject row's risk is exactly its cost
+    return risks.index(min(risks)), True  # the first minimum: ties go to the earlier action
 
 
 def choose(risks: np.ndarray, valid: np.ndarray, invalid_action: int) -> np.ndarray:
