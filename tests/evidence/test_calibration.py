@@ -134,7 +134,7 @@ def test_a_row_every_isotonic_map_sends_to_zero_is_invalid() -> None:
         "calibration_ends": np.array([2.0, 4.0, 6.0]),
     }
     posteriors, _, valid = kernel.posteriors_and_risks(
-        np.array([[0.4, 0.3, 0.3], [0.7, 0.2, 0.1]]), "posterior", params
+        np.array([[0.4, 0.3, 0.3], [0.7, 0.2, 0.1]]), "posterior", kernel.plan("posterior", params)
     )
     assert valid.tolist() == [False, True]
     assert np.isnan(posteriors[0]).all() and posteriors[1].tolist() == [1.0, 0.0, 0.0]
