@@ -7,10 +7,12 @@ starts its own server in a background thread on a free loopback port and stops i
 
 from __future__ import annotations
 
+import asyncio
 import csv
 import importlib.util
 import json
 import math
+import os
 import shutil
 import socket
 import subprocess
@@ -150,10 +152,17 @@ class Running:
     rule_path: Path
 
 
+RELOADABLE = ("a", "b", "corrupt", "other_features")
+
+
 @pytest.fixture
 def server(artefacts: Artefacts, tmp_path: Path) -> Iterator[Running]:
+    """The service on rule A, with the test artefacts under their names in its rules directory (tmp_path)."""
     rule_path = tmp_path / "serving.rule"
     shutil.copyfile(artefacts.a, rule_path)
+    for attribute in RELOADABLE:
+        source = getattr(artefacts, attribute)
+        shutil.copyfile(source, tmp_path / source.name)
     app = service.create_app(rule_path)
     with running(app) as url, httpx.Client(base_url=url, timeout=10.0) as client:
         yield Running(url, client, rule_path)
@@ -331,7 +340,7 @@ def test_health_names_the_rule(server: Running, artefacts: Artefacts) -> None:
 
 
 def test_reload_switches_the_rule(server: Running, artefacts: Artefacts, holdout: list[dict]) -> None:
-    response = server.client.post("/admin/reload", json={"path": str(artefacts.b)})
+    response = server.client.post("/admin/reload", json={"rule": artefacts.b.name})
     assert response.status_code == 200, response.text
     body = response.json()
     assert body["changed"] is True
@@ -354,13 +363,14 @@ def test_reload_without_a_path_rereads_the_serving_file(server: Running, artefac
 
 
 def test_failed_reloads_keep_the_old_rule(server: Running, artefacts: Artefacts, holdout: list[dict]) -> None:
+    (server.rule_path.parent / "subdirectory").mkdir()
     failures = [
-        ({"path": str(artefacts.corrupt)}, 422),
-        ({"path": str(artefacts.corrupt.parent / "absent.rule")}, 422),
-        ({"path": str(artefacts.corrupt.parent)}, 422),
-        ({"path": str(artefacts.other_features)}, 409),
-        ({"path": ""}, 400),
-        ({"path": str(artefacts.b), "force": True}, 400),
+        ({"rule": artefacts.corrupt.name}, 422),
+        ({"rule": "absent.rule"}, 404),
+        ({"rule": "subdirectory"}, 404),
+        ({"rule": artefacts.other_features.name}, 409),
+        ({"rule": ""}, 400),
+        ({"rule": artefacts.b.name, "force": True}, 400),
     ]
     for request, status in failures:
         response = server.client.post("/admin/reload", json=request)
@@ -376,10 +386,89 @@ def test_failed_reloads_keep_the_old_rule(server: Running, artefacts: Artefacts,
     assert health["rule"]["content_sha256"] == artefacts.hash_a and health["reloads"] == 0
 
     allowed = server.client.post(
-        "/admin/reload", json={"path": str(artefacts.other_features), "allow_feature_change": True}
+        "/admin/reload", json={"rule": artefacts.other_features.name, "allow_feature_change": True}
     )
     assert allowed.status_code == 200
     assert allowed.json()["rule"]["features"][0].endswith("_v2")
+
+
+@pytest.mark.parametrize(
+    "name",
+    ["/etc/passwd", "../packhouse-a.rule", "..", ".", ".hidden.rule", "sub/x.rule", "sub\\x.rule", "x\x00.rule", 7],
+)
+def test_reload_takes_a_rule_file_name_never_a_path(server: Running, artefacts: Artefacts, name: object) -> None:
+    # Reload used to load any path on the server.
+    response = server.client.post("/admin/reload", json={"rule": name})
+    assert response.status_code == 400 and response.json()["error"] == "bad-rule-name"
+    response = server.client.post("/admin/reload", json={"path": str(artefacts.b)})
+    assert response.status_code == 400 and response.json()["error"] == "unknown-request-key"
+    assert server.client.get("/health").json()["rule"]["content_sha256"] == artefacts.hash_a
+
+
+def test_missing_and_unreadable_rule_files_get_the_same_answer(
+    server: Running, artefacts: Artefacts, tmp_path_factory: pytest.TempPathFactory
+) -> None:
+    # The messages used to tell a missing file from an unreadable one, so reload probed the server's files.
+    rules = server.rule_path.parent
+    outside = tmp_path_factory.mktemp("outside") / "elsewhere.rule"
+    shutil.copyfile(artefacts.b, outside)
+    (rules / "link-out.rule").symlink_to(outside)  # a valid rule, but outside the rules directory
+    (rules / "dangling.rule").symlink_to(rules / "nowhere.rule")
+    (rules / "directory.rule").mkdir()
+    os.mkfifo(rules / "fifo.rule")
+    unreadable = ["link-out.rule", "dangling.rule", "directory.rule", "fifo.rule"]
+    if os.geteuid() != 0:  # permissions do not stop root
+        shutil.copyfile(artefacts.b, rules / "locked.rule")
+        (rules / "locked.rule").chmod(0)
+        unreadable.append("locked.rule")
+    missing = server.client.post("/admin/reload", json={"rule": "absent.rule"})
+    for name in unreadable:
+        response = server.client.post("/admin/reload", json={"rule": name})
+        assert response.status_code == missing.status_code == 404, name
+        assert response.json() == {**missing.json(), "message": missing.json()["message"].replace("absent.rule", name)}
+    assert server.client.get("/health").json()["reloads"] == 0
+
+
+def test_reload_needs_the_token_when_one_is_configured(artefacts: Artefacts, holdout: list[dict]) -> None:
+    app = service.create_app(artefacts.a, reload_token="correct horse")
+    with running(app) as url, httpx.Client(base_url=url, timeout=10.0) as client:
+        for headers in ({}, {"Authorization": "Bearer wrong"}, {"Authorization": "correct horse"}):
+            response = client.post("/admin/reload", json={"rule": artefacts.b.name}, headers=headers)
+            assert response.status_code == 401 and response.json()["error"] == "unauthorized", headers
+        assert client.post("/decide", json={"record": holdout[0]}).status_code == 200  # deciding needs no token
+        response = client.post(
+            "/admin/reload", json={"rule": artefacts.b.name}, headers={"Authorization": "Bearer correct horse"}
+        )
+        assert response.status_code == 200 and response.json()["rule"]["content_sha256"] == artefacts.hash_b
+
+
+def test_reload_without_a_token_answers_loopback_clients_only(artefacts: Artefacts) -> None:
+    app = service.create_app(artefacts.a)
+
+    async def reload_from(address: str) -> httpx.Response:
+        transport = httpx.ASGITransport(app=app, client=(address, 40000))
+        async with httpx.AsyncClient(transport=transport, base_url="http://service") as client:
+            return await client.post("/admin/reload")
+
+    for address in ("10.1.2.3", "192.168.0.7", "2001:db8::1"):
+        response = asyncio.run(reload_from(address))
+        assert response.status_code == 403 and response.json()["error"] == "reload-needs-token", address
+    for address in ("127.0.0.1", "::1"):
+        assert asyncio.run(reload_from(address)).status_code == 200, address
+
+
+def test_serve_script_needs_a_token_to_offer_reload_beyond_loopback(artefacts: Artefacts) -> None:
+    script = str(SERVICE / "serve.py")
+    environment = {key: value for key, value in os.environ.items() if key != "POLICYC_RELOAD_TOKEN"}
+    refused = subprocess.run(
+        [sys.executable, script, "--rule", str(artefacts.a), "--host", "0.0.0.0", "--port", str(_free_port())],
+        capture_output=True,
+        text=True,
+        timeout=30,
+        env=environment,
+    )
+    assert refused.returncode == 2
+    assert "POLICYC_RELOAD_TOKEN" in refused.stderr and "--no-admin" in refused.stderr
 
 
 def test_reloading_under_load_drops_no_request(server: Running, artefacts: Artefacts, holdout: list[dict]) -> None:
@@ -415,7 +504,7 @@ def test_reloading_under_load_drops_no_request(server: Running, artefacts: Artef
     deadline = time.monotonic() + 15.0
     while any(worker.is_alive() for worker in workers) and time.monotonic() < deadline:
         target = artefacts.b if reloads % 2 == 0 else artefacts.a
-        assert server.client.post("/admin/reload", json={"path": str(target)}).status_code == 200
+        assert server.client.post("/admin/reload", json={"rule": target.name}).status_code == 200
         reloads += 1
         time.sleep(0.01)
     for worker in workers:

@@ -6,7 +6,9 @@ Starlette application with three endpoints:
 * ``POST /decide``: decide one record or a batch, optionally with posteriors,
   risks, runner-up and margin per record;
 * ``GET /health``: the identity of the rule being served;
-* ``POST /admin/reload``: swap in another artefact without dropping requests.
+* ``POST /admin/reload``: swap in another artefact without dropping requests. It loads only files
+  named by their rule file name inside one configured directory, and needs a bearer token, or
+  else a request from loopback.
 
 Only ``policyc.runtime`` is imported from policyc, so the service needs numpy,
 the standard library, Starlette and uvicorn; the compiler stays out of the
@@ -23,10 +25,13 @@ leaves the old rule in place.
 
 from __future__ import annotations
 
+import hmac
+import ipaddress
 import json
 import logging
 import math
 import os
+import re
 import stat
 import threading
 from collections.abc import Mapping, Sequence
@@ -50,10 +55,12 @@ __all__ = [
     "MAX_BODY_BYTES",
     "MAX_RECORDS",
     "ReloadRefused",
+    "RuleNotAvailable",
     "RuleSlot",
     "Serving",
     "StartupError",
     "create_app",
+    "is_loopback",
     "load_serving",
 ]
 
@@ -67,7 +74,9 @@ MAX_REPORTED_PROBLEMS = 20
 """Problems listed in one 422 answer; the total count is always given."""
 
 _DECIDE_KEYS = frozenset({"record", "records", "explain"})
-_RELOAD_KEYS = frozenset({"path", "allow_feature_change"})
+_RELOAD_KEYS = frozenset({"rule", "allow_feature_change"})
+RULE_FILE_NAME = re.compile(r"^[A-Za-z0-9_][A-Za-z0-9_.-]{0,254}$")
+"""A rule file name for reload: no path separator, no leading dot (so neither ``..`` nor hidden files)."""
 
 log = logging.getLogger("policyc.service")
 
@@ -78,6 +87,41 @@ class StartupError(RuntimeError):
 
 class ReloadRefused(ValueError):
     """A reload found a valid artefact that the service will not swap in without being told to."""
+
+
+class RuleNotAvailable(LookupError):
+    """No readable regular rule file of that name in the rules directory.
+
+    One answer whether the file is missing, unreadable, not a regular file or a link leading out of the
+    directory, so the endpoint tells nobody which files exist on the server.
+    """
+
+
+def is_loopback(host: str | None) -> bool:
+    """Whether ``host`` (a name or an address) is this machine's loopback."""
+    if host == "localhost":
+        return True
+    try:
+        return host is not None and ipaddress.ip_address(host).is_loopback
+    except ValueError:
+        return False
+
+
+def rule_in_directory(rules_dir: str, name: str) -> str:
+    """The real path of the regular, readable file ``name`` directly inside ``rules_dir`` (itself a real path)."""
+    real = os.path.realpath(os.path.join(rules_dir, name))
+    if os.path.dirname(real) != rules_dir:  # a symbolic link leading elsewhere
+        raise RuleNotAvailable(name)
+    try:
+        descriptor = os.open(real, os.O_RDONLY | getattr(os, "O_NONBLOCK", 0))
+    except OSError:
+        raise RuleNotAvailable(name) from None
+    try:
+        if not stat.S_ISREG(os.fstat(descriptor).st_mode):
+            raise RuleNotAvailable(name)
+    finally:
+        os.close(descriptor)
+    return real
 
 
 class RequestProblem(Exception):
@@ -409,6 +453,7 @@ def _explanations(rule: Rule, explanation: Explanation) -> list[dict[str, Any]]:
 
 
 def _parse_reload_request(body: bytes) -> tuple[str | None, bool]:
+    """Return (rule file name or None for the serving file, allow_feature_change), or raise a 400."""
     if not body.strip():
         return None, False
     payload = _parse_json(body)
@@ -419,13 +464,31 @@ def _parse_reload_request(body: bytes) -> tuple[str | None, bool]:
         raise RequestProblem(
             400, "unknown-request-key", f"unknown key(s) {unknown} in the request; allowed: {sorted(_RELOAD_KEYS)}"
         )
-    path = payload.get("path")
-    if path is not None and (not isinstance(path, str) or not path):
-        raise RequestProblem(400, "bad-request-shape", '"path" must be a non-empty string')
+    name = payload.get("rule")
+    if name is not None and (not isinstance(name, str) or not RULE_FILE_NAME.match(name)):
+        raise RequestProblem(
+            400,
+            "bad-rule-name",
+            '"rule" must be the file name of a rule in the rules directory: letters, digits and _.-, '
+            "no path separator, not starting with a dot",
+        )
     allow = payload.get("allow_feature_change", False)
     if not isinstance(allow, bool):
         raise RequestProblem(400, "bad-request-shape", '"allow_feature_change" must be true or false')
-    return path, allow
+    return name, allow
+
+
+def _authorise_reload(request: Request, token: str | None) -> None:
+    """A configured token is always required; without one, only loopback clients may reload."""
+    if token is None:
+        if not is_loopback(request.client.host if request.client else None):
+            raise RequestProblem(
+                403, "reload-needs-token", "reloading from another host needs the service to be started with a token"
+            )
+        return
+    supplied = request.headers.get("authorization", "").encode("utf-8", "surrogateescape")
+    if not hmac.compare_digest(supplied, f"Bearer {token}".encode()):  # constant time: no guessing by timing
+        raise RequestProblem(401, "unauthorized", "reload needs the service's token: Authorization: Bearer <token>")
 
 
 def create_app(
@@ -434,17 +497,28 @@ def create_app(
     max_records: int = MAX_RECORDS,
     max_body_bytes: int = MAX_BODY_BYTES,
     enable_admin: bool = True,
+    rules_dir: str | os.PathLike[str] | None = None,
+    reload_token: str | None = None,
 ) -> Starlette:
     """Load the rule at ``rule_path`` and return the application serving it.
 
-    Raises StartupError, with the reason, when the artefact cannot be served:
-    the service never starts without a verified rule. The slot holding the rule
-    is ``app.state.rule_slot``.
+    ``POST /admin/reload`` loads rule files by name from ``rules_dir`` only (default: the directory of
+    ``rule_path``). With ``reload_token`` it needs ``Authorization: Bearer <token>``; without one it
+    answers loopback clients only.
+
+    Raises StartupError, with the reason, when the artefact cannot be served or the rules directory is
+    not a directory: the service never starts without a verified rule. The slot holding the rule is
+    ``app.state.rule_slot``.
     """
     try:
         slot = RuleSlot(load_serving(rule_path))
     except ArtefactError as exc:
         raise StartupError(f"refusing to start: {exc}") from None
+    directory = os.path.realpath(os.fspath(rules_dir) if rules_dir is not None else os.path.dirname(slot.current.path))
+    if not os.path.isdir(directory):
+        raise StartupError(f"refusing to start: the rules directory {directory} is not a directory")
+    if reload_token is not None and not reload_token.strip():
+        raise StartupError("refusing to start: the reload token is empty")
     log.info("serving %s from %s", slot.current.identity(), slot.current.path)
 
     async def decide(request: Request) -> Response:
@@ -456,10 +530,18 @@ def create_app(
         serving = slot.current
         return JSONResponse({"status": "ok", "rule": serving.description(), "reloads": slot.reloads})
 
+    def reload_named(name: str | None, allow_feature_change: bool) -> tuple[Serving, Serving]:
+        path = None if name is None else rule_in_directory(directory, name)
+        return slot.reload(path, allow_feature_change)
+
     async def reload(request: Request) -> Response:
-        path, allow_feature_change = _parse_reload_request(await _read_body(request, 64 * 1024))
+        _authorise_reload(request, reload_token)
+        name, allow_feature_change = _parse_reload_request(await _read_body(request, 64 * 1024))
         try:
-            previous, new = await run_in_threadpool(slot.reload, path, allow_feature_change)
+            previous, new = await run_in_threadpool(reload_named, name, allow_feature_change)
+        except RuleNotAvailable:
+            message = f"no readable rule file named {name!r} in the rules directory"
+            return _reload_failed(404, "rule-not-found", message, slot)
         except ReloadRefused as exc:
             return _reload_failed(409, "reload-refused", str(exc), slot)
         except ArtefactError as exc:

@@ -6,21 +6,15 @@ Run as a script, so this directory is on ``sys.path`` and ``app`` is the module 
 from __future__ import annotations
 
 import argparse
-import ipaddress
 import logging
+import os
 import sys
 
 import uvicorn
-from app import MAX_RECORDS, StartupError, create_app
+from app import MAX_RECORDS, StartupError, create_app, is_loopback
 
-
-def _is_loopback(host: str) -> bool:
-    if host == "localhost":
-        return True
-    try:
-        return ipaddress.ip_address(host).is_loopback
-    except ValueError:
-        return False
+TOKEN_VARIABLE = "POLICYC_RELOAD_TOKEN"
+"""Environment variable holding the reload token (never a command-line option: others can read those)."""
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -37,24 +31,35 @@ def main(argv: list[str] | None = None) -> int:
         "--no-admin", action="store_true", help="leave out POST /admin/reload (the rule is then fixed for the run)"
     )
     parser.add_argument(
+        "--rules-dir",
+        help="directory POST /admin/reload loads rule files from, by file name (default: the directory of --rule)",
+    )
+    parser.add_argument(
         "--log-level", default="info", choices=["critical", "error", "warning", "info", "debug"], help="log level"
     )
     args = parser.parse_args(argv)
     if args.max_records < 1:
         parser.error("--max-records must be at least 1")
 
+    token = os.environ.get(TOKEN_VARIABLE) or None
+    if not args.no_admin and token is None and not is_loopback(args.host):
+        parser.error(
+            f"listening on {args.host} with POST /admin/reload needs a reload token: set {TOKEN_VARIABLE}, "
+            "or pass --no-admin"
+        )
+
     logging.basicConfig(level=args.log_level.upper(), format="%(levelname)s:     %(name)s: %(message)s")
     try:
-        app = create_app(args.rule, max_records=args.max_records, enable_admin=not args.no_admin)
+        app = create_app(
+            args.rule,
+            max_records=args.max_records,
+            enable_admin=not args.no_admin,
+            rules_dir=args.rules_dir,
+            reload_token=token,
+        )
     except StartupError as exc:
         print(f"serve.py: {exc}", file=sys.stderr)
         return 1
-    if not args.no_admin and not _is_loopback(args.host):
-        logging.getLogger("policyc.service").warning(
-            "listening on %s with POST /admin/reload enabled and unauthenticated: anyone who can reach this "
-            "address can swap the rule. Put it behind an authenticating proxy or pass --no-admin.",
-            args.host,
-        )
     uvicorn.run(app, host=args.host, port=args.port, log_level=args.log_level)
     return 0
 
