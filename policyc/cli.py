@@ -17,6 +17,7 @@ from policyc import __version__
 # pydantic nor matplotlib (tests/test_startup.py), and `policyc check` loads no pyarrow.
 if TYPE_CHECKING:
     from policyc.language.checks import CheckReport
+    from policyc.language.model import Policy
     from policyc.review.plot import FigureSize
     from policyc.review.shared.loading import LoadedRule
 
@@ -224,6 +225,33 @@ def _policy_tables(report: CheckReport) -> list[str]:
         posterior = ", ".join(f"{c}={p:.3f}" for c, p in zip(policy.classes, region.example_posterior, strict=True))
         status = f"margin {region.margin:.4g} at ({posterior})" if region.reachable else "never chosen"
         out.append(f"  {region.name}: {status}")
+    return out + _stated_limits(policy)
+
+
+def _stated_limits(policy: Policy) -> list[str]:
+    """The limits as stated and the entries of L each multiplier will be added to (compile solves the values)."""
+    limits = policy.limits
+    if limits is None:
+        return []
+    count = len(limits.max_share) + len(limits.min_recall)
+    out = [
+        f"\nlimits, solved by compile on {limits.data} at confidence {limits.confidence:g} "
+        f"(each at {1 - (1 - limits.confidence) / max(count, 1):.4g}): the rule decides by L' = L + Σ_j μ_j M_j"
+    ]
+    for action, share in limits.max_share.items():
+        where = "the reject cost" if policy.reject is not None and action == policy.reject.action else f"row {action}"
+        out.append(f"  max_share[{action}] ≤ {share:g}: its μ is added to {where}")
+    names = [*policy.actions, *([policy.reject.action] if policy.reject is not None else [])]
+    for name, recall in limits.min_recall.items():
+        entries = ", ".join(
+            f"the reject cost when the truth is {name}"
+            if policy.reject is not None and a == names[-1]
+            else f"loss[{a}][{name}]"
+            for a in names
+            if a not in recall.actions
+        )
+        listed = ", ".join(recall.actions)
+        out.append(f"  min_recall[{name}] ≥ {recall.share:g} by {listed}: its μ is added to {entries or 'nothing'}")
     return out
 
 

@@ -115,8 +115,10 @@ def _stated_limit(figures: dict[str, Any]) -> str:
     return f"at least {share(figures['share'])} of {figures['subject']} get {' or '.join(figures['actions'])}"
 
 
-def limits_text(record: dict[str, Any], unit: str | None, actions: Sequence[str], classes: Sequence[str]) -> str:
-    """A manifest's ``limits`` record for people: per limit the rate, bound, multiplier and price; L'.
+def limits_text(
+    record: dict[str, Any], unit: str | None, actions: Sequence[str], classes: Sequence[str], matrix: bool = True
+) -> str:
+    """A manifest's ``limits`` record for people: per limit the rate, bound, multiplier and price; L' (``matrix``).
 
     ``actions`` (reject last) and ``classes`` give the order of L' (the manifest's JSON keys are sorted)."""
     per, both = record["per_limit_confidence"], record["confidence"]
@@ -132,16 +134,18 @@ def limits_text(record: dict[str, Any], unit: str | None, actions: Sequence[str]
         for f in record["limits"]
     ]
     header = ["limit", "rate", f"bound ({100 * per:.4g}%)", "multiplier", f"price{money}"]
-    adjusted = np.array([[record["adjusted_loss"][a][c] for c in classes] for a in actions])
-    return "\n".join(
-        [
-            f"operating limits on {record['data']} ({record['rows']} rows): each holds on new data with "
-            f"probability ≥ {100 * per:.4g}%, all together ≥ {100 * both:.4g}%",
-            text_table(header, rows),
-            f"  price of all limits together: {number(record['price'])} {unit or 'per row'} "
-            f"(expected loss {number(record['expected_loss_unlimited'])} -> {number(record['expected_loss_limited'])})",
+    lines = [
+        f"operating limits on {record['data']} ({record['rows']} rows): each holds on new data with "
+        f"probability ≥ {100 * per:.4g}%, all together ≥ {100 * both:.4g}%",
+        text_table(header, rows),
+        f"  price of all limits together: {number(record['price'])} {unit or 'per row'} "
+        f"(expected loss {number(record['expected_loss_unlimited'])} -> {number(record['expected_loss_limited'])})",
+    ]
+    if matrix:
+        adjusted = np.array([[record["adjusted_loss"][a][c] for c in classes] for a in actions])
+        lines += [
             "",
             "adjusted loss L' = L + Σ_j μ_j M_j, the matrix the rule decides by, loss[action][true class]:",
             format_matrix(adjusted, actions, classes, "action", "true class"),
         ]
-    )
+    return "\n".join(lines)

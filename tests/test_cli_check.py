@@ -237,3 +237,15 @@ def test_check_help_states_the_exit_codes() -> None:
     text = flat(run("check", "--help").output)
     assert "Exit 0 when clean or warnings only, 1 on errors" in text
     assert "--strict" in text and "--format [text|json]" in text
+
+
+def test_show_lists_the_limits_and_the_entries_their_multipliers_raise() -> None:
+    policy = Path(__file__).resolve().parents[1] / "policies-demo" / "packhouse" / "policy-r6.yaml"
+    result = run("check", "--show", str(policy))
+    assert result.exit_code == 0, result.output
+    assert "confidence 0.95 (each at 0.975)" in result.output
+    assert "max_share[hold_for_inspector] ≤ 0.05: its μ is added to the reject cost" in result.output
+    assert (
+        "min_recall[defect] ≥ 0.99 by juice, hold_for_inspector: its μ is added to "
+        "loss[pack_premium][defect], loss[pack_standard][defect]"
+    ) in result.output

@@ -15,6 +15,7 @@ from click.testing import CliRunner, Result
 from helpers import CLAIMS, DEMOS, PACKHOUSE, read_csv_columns, two_class_text
 
 from policyc.cli import main
+from policyc.render import rounded
 from policyc.runtime import Rule, load_rule
 
 INCOMING = DEMOS / "packhouse" / "incoming.csv"
@@ -284,3 +285,17 @@ def test_compile_reports_the_limits_as_in_the_demo_report(tmp_path: Path, monkey
     cap, recall = record["limits"]
     assert cap["rate"] <= 0.05 and recall["rate"] >= 0.99
     assert cap["price"] >= 0.0 and 0.0 <= recall["price"] <= record["price"]
+
+
+def test_inspect_shows_the_stated_matrix_and_the_limits(tmp_path: Path) -> None:
+    rule_file = tmp_path / "r6.rule"
+    assert run("compile", DEMOS / "packhouse" / "policy-r6.yaml", "-o", rule_file).exit_code == 0
+    text = run("inspect", rule_file).output
+    assert "(the adjusted matrix L' of the limits below)" in text and "stated loss (EUR per item)" in text
+    assert "at most 5.00% get hold_for_inspector" in text and "price of all limits together" in text
+    report = json.loads(run("inspect", rule_file, "--format", "json").output)
+    assert report["limits"] == rounded(load_rule(rule_file).manifest["limits"])  # JSON reports round floats
+    assert (
+        report["loss"]["hold_for_inspector"]["premium"]
+        == report["limits"]["adjusted_loss"]["hold_for_inspector"]["premium"]
+    )

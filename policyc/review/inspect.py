@@ -9,7 +9,7 @@ import numpy as np
 from pydantic.dataclasses import dataclass
 
 from policyc.geometry.intervals import posterior_intervals
-from policyc.render import format_matrix
+from policyc.render import format_matrix, limits_text
 from policyc.review.shared.reports import REPORT_CONFIG
 from policyc.runtime import Rule
 
@@ -50,6 +50,7 @@ class Inspection:
     evidence: dict[str, Any]
     loss: dict[str, dict[str, float]]
     posterior_intervals: tuple[PosteriorInterval, ...] | None  # two classes only
+    limits: dict[str, Any] | None = None  # the manifest's record of solved operating limits (loss is then L')
 
 
 _FACTS = (
@@ -91,6 +92,7 @@ def inspection(rule: Rule) -> Inspection:
             for a, row in zip(rule.actions, rule.params["loss"].tolist(), strict=True)
         },
         posterior_intervals=intervals,
+        limits=manifest.get("limits"),
     )
 
 
@@ -102,10 +104,16 @@ def render_inspection(rule: Rule, report: Inspection) -> str:
         lines.append("training rows: " + ", ".join(f"{c}={report.training_class_counts[c]}" for c in rule.classes))
     lines.append("evidence: " + json.dumps(report.evidence, sort_keys=True))
     unit = f" ({report.loss_unit})" if report.loss_unit else ""
-    lines.append(f"\nloss{unit}, loss[action][true class] (reject row last):")
+    adjusted = " (the adjusted matrix L' of the limits below)" if report.limits is not None else ""
+    lines.append(f"\nloss{unit}, loss[action][true class] (reject row last){adjusted}:")
     lines.append(format_matrix(np.asarray(rule.params["loss"]), rule.actions, rule.classes, "action", "true class"))
     if report.posterior_intervals is not None:
         lines.append(f"\ndecision by P({rule.classes[1]} | x):")
         for interval in report.posterior_intervals:
             lines.append(f"  [{interval.low:.6g}, {interval.high:.6g}]: {interval.action}")
+    if report.limits is not None:
+        stated = np.array([[report.limits["stated_loss"][a][c] for c in rule.classes] for a in rule.actions])
+        lines.append(f"\nstated loss{unit}, before the limits:")
+        lines.append(format_matrix(stated, rule.actions, rule.classes, "action", "true class"))
+        lines.append("\n" + limits_text(report.limits, report.loss_unit, rule.actions, rule.classes, matrix=False))
     return "\n".join(lines)
