@@ -10,6 +10,7 @@ language           ``PolicyError`` (source, schema, check), with located  ``poli
 evidence           :class:`DataError`, :class:`FitProblem`               here
 compiler           ``CompileError``, with located diagnostics            ``policyc.language.diagnostics``
 review             :class:`ReviewError` (``PlotError`` for pictures)     here
+(any output)       :class:`OutputError`                                  here
 =================  ====================================================  =========
 
 The command line catches :class:`PolicycError` in one place, prints :meth:`~PolicycError.as_text` (or
@@ -24,7 +25,7 @@ from collections.abc import Sequence
 
 from policyc.runtime.errors import ArtefactError, InputError, PolicycError
 
-__all__ = ["ArtefactError", "DataError", "FitProblem", "InputError", "PolicycError", "ReviewError"]
+__all__ = ["ArtefactError", "DataError", "FitProblem", "InputError", "OutputError", "PolicycError", "ReviewError"]
 
 
 class DataError(PolicycError, ValueError):
@@ -50,6 +51,12 @@ class FitProblem(PolicycError, ValueError):
 
     def as_json(self) -> dict[str, object]:
         return {**super().as_json(), "code": self.code, "hint": self.hint}
+
+
+class OutputError(PolicycError, ValueError):
+    """A file cannot be written where asked (its directory does not exist, ...); nothing was written."""
+
+    stage = "files"
 
 
 class ReviewError(PolicycError, ValueError):

@@ -16,6 +16,8 @@ from contextlib import contextmanager
 from pathlib import Path
 from types import FrameType
 
+from policyc.errors import OutputError
+
 __all__ = ["atomic_path", "file_sha256", "same_file", "terminate_like_interrupt", "write_bytes_atomically"]
 
 _CHUNK = 1 << 20
@@ -32,8 +34,10 @@ def atomic_path(target: Path) -> Iterator[Path]:
     permission bits; a read-only one is refused with PermissionError rather than replaced. A new file gets 0644.
     """
     target = Path(os.path.realpath(target))
+    if not target.parent.is_dir():
+        # a missing directory is more often a typo than a wish: never create it silently
+        raise OutputError(f"{target}: the directory {target.parent} does not exist; create it first")
     mode = _replaceable_mode(target)
-    target.parent.mkdir(parents=True, exist_ok=True)
     # The name is known (and registered for SIGTERM, below) before one system call creates the file inside the
     # try, so Ctrl-C or SIGTERM can arrive at any moment without leaving it behind.
     temporary = target.parent / f".{target.name}.{secrets.token_hex(8)}.partial"

@@ -51,6 +51,10 @@ def read_rows(path: Path) -> list[dict[str, str]]:
 
 def test_compile_writes_rule_and_module_and_prints_the_hash(tmp_path: Path) -> None:
     rule_file, module_file = tmp_path / "out" / "p.rule", tmp_path / "out" / "p_rule.py"
+    missing = run("compile", PACKHOUSE, "-o", rule_file)
+    assert missing.exit_code == 1 and "does not exist; create it first" in missing.output  # no silent mkdir -p
+    assert not rule_file.parent.exists()
+    rule_file.parent.mkdir()
     result = run("compile", PACKHOUSE, "-o", rule_file, "--emit-python", module_file)
     assert result.exit_code == 0, result.output
     rule = load_rule(rule_file)

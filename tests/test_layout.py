@@ -18,7 +18,7 @@ PACKAGE = Path(__file__).resolve().parents[1] / "policyc"
 ALLOWED: dict[str, set[str]] = {
     "runtime": set(),
     "geometry": set(),
-    "files": set(),
+    "files": {"errors"},
     "render": set(),
     "errors": {"runtime"},
     "language": {"files", "geometry", "errors", "render"},

@@ -258,7 +258,7 @@ def read_back(path: Path) -> pa.Table:
 
 @pytest.mark.parametrize("name", ["out.csv", "out.parquet"])
 def test_table_writer_writes_every_batch(name: str, tmp_path: Path) -> None:
-    target = tmp_path / "sub" / name
+    target = tmp_path / name
     with TableWriter(target, SCHEMA).open() as write:
         for batch in record_batches():
             write(batch)
