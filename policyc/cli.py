@@ -264,21 +264,29 @@ def schema() -> None:
 
 
 class _ProgressDisplay:
-    """Rows processed, on a terminal's stderr: a bar when the total is known, a running count otherwise."""
+    """Rows processed, on a terminal's stderr: a bar when the total is known, a running count otherwise.
+
+    Each pass over the data (Ledoit-Wolf reads the training file twice) gets its own bar or count, named.
+    """
 
     def __init__(self, label: str) -> None:
         self.label = label
+        self.stage = ""
         self.done = 0
         self.bar: Any = None
 
-    def __call__(self, rows: int, total: int | None) -> None:
+    def __call__(self, rows: int, total: int | None, stage: str = "") -> None:
+        if stage != self.stage:
+            self.close()
+            self.stage, self.done, self.bar = stage, 0, None
         self.done += rows
+        label = f"{self.label} ({self.stage})" if self.stage else self.label
         if total is not None:
             if self.bar is None:
-                self.bar = click.progressbar(length=total, label=self.label, file=sys.stderr)
+                self.bar = click.progressbar(length=total, label=label, file=sys.stderr)
             self.bar.update(rows)
         else:
-            click.echo(f"\r{self.label}: {self.done:,} rows", nl=False, err=True)
+            click.echo(f"\r{label}: {self.done:,} rows", nl=False, err=True)
 
     def close(self) -> None:
         if self.bar is not None:

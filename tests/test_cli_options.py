@@ -81,3 +81,16 @@ def test_decide_inspect_and_priors_take_a_policy_file_like_diff_evaluate_and_plo
     assert from_rule[0] == from_policy[0] == 0
     if command[0] == "inspect":  # the same rule, so the same manifest and hashes
         assert from_rule[1] == from_policy[1]
+
+
+def test_the_progress_display_counts_each_pass_on_its_own_line(capsys: pytest.CaptureFixture[str]) -> None:
+    from policyc.cli import _ProgressDisplay
+
+    display = _ProgressDisplay("fitting")
+    for stage in ("pass 1 of 2", "pass 2 of 2"):
+        display(3, None, stage)
+        display(2, None, stage)
+    display.close()
+    shown = capsys.readouterr().err
+    assert "fitting (pass 1 of 2): 5 rows" in shown and "fitting (pass 2 of 2): 5 rows" in shown
+    assert "10 rows" not in shown

@@ -198,7 +198,7 @@ def read_reference(
         posteriors.append(assessment.posteriors)
         valid.append(assessment.valid)
         if progress is not None:
-            progress(batch.features.shape[0], None)
+            progress(batch.features.shape[0], None, "reference data")
     if not posteriors:
         raise DataError(f"{path}: the file has no rows")
     return ReferenceSample(

@@ -2,9 +2,8 @@
 
 from __future__ import annotations
 
-from collections.abc import Callable
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, Protocol
 
 import numpy as np
 
@@ -13,8 +12,12 @@ if TYPE_CHECKING:
 
 __all__ = ["FittedEvidence", "Progress"]
 
-Progress = Callable[[int, int | None], None]
-"""Called with the number of rows just processed and the total expected (None when unknown)."""
+
+class Progress(Protocol):
+    """Called with the rows just processed, the rows expected in this pass (None when unknown), and which pass
+    of the data it is (``"pass 1 of 2"``, ``"reference data"``; empty when there is one)."""
+
+    def __call__(self, rows: int, total: int | None, stage: str = "") -> None: ...
 
 
 @dataclass(frozen=True)

@@ -278,9 +278,12 @@ def fit(
     digest = _DigestInBackground(path)
     passes = 2 if evidence.shrinkage == "auto" else 1  # Ledoit-Wolf reads the data a second time
     total_rows = count_rows(path)
-    expected = total_rows * passes if total_rows is not None else None
+    passes_begun = 0
 
     def batches() -> Iterator[Batch]:
+        nonlocal passes_begun
+        passes_begun += 1
+        stage = f"pass {passes_begun} of {passes}" if passes > 1 else ""
         for batch in read_feature_batches(
             path, evidence.features, evidence.training.label, FIT_BATCH_ROWS, layout="columns", classes=classes
         ):
@@ -303,7 +306,7 @@ def fit(
                     ("evidence", "training"),
                 )
             if progress is not None:
-                progress(batch.features.shape[0], expected)
+                progress(batch.features.shape[0], total_rows, stage)
             yield batch.features, codes
 
     moments = moments_by_class(batches(), len(classes), n_features)

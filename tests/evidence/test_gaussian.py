@@ -662,3 +662,24 @@ def test_unreadable_training_value_names_column_and_row(tmp_path: Path) -> None:
     assert diagnostic.code == "training-data-unusable"
     assert "'mass_g'" in diagnostic.message and "'heavy'" in diagnostic.message
     assert re.search(r"\brow 4 \(line 5\)", diagnostic.message), diagnostic.message
+
+
+def test_progress_counts_each_row_once_per_named_pass(tmp_path: Path) -> None:
+    # Ledoit-Wolf reads the training file twice; each pass reports its own rows, named, never a doubled total
+    from helpers import PACKHOUSE
+
+    from policyc.evidence import fit_evidence
+    from policyc.language.model import build_policy
+    from policyc.language.source import parse_source
+
+    text = PACKHOUSE.read_text(encoding="utf-8").replace("shrinkage: none", "shrinkage: auto")
+    text = text.replace("data: train.csv", f"data: {PACKHOUSE.parent / 'train.csv'}")
+    policy = build_policy(parse_source(text[: text.index("    sha256:")]))
+    seen: dict[str, int] = {}
+
+    def record(rows: int, total: int | None, stage: str = "") -> None:
+        seen[stage] = seen.get(stage, 0) + rows
+
+    fit_evidence(policy, None, record)
+    rows = len((PACKHOUSE.parent / "train.csv").read_text(encoding="utf-8").splitlines()) - 1
+    assert seen == {"pass 1 of 2": rows, "pass 2 of 2": rows}
