@@ -1,8 +1,8 @@
 """What a caller passes -> the (n, d) float64 feature matrix the kernels evaluate.
 
-This file imports numpy only: ``policyc compile --emit-python`` copies it, like
-kernel.py, into every standalone module, so the module reads input exactly as
-the runtime does.
+This file imports numpy and the standard library only: ``policyc compile
+--emit-python`` copies it, like kernel.py, into every standalone module, so the
+module reads input exactly as the runtime does.
 
 Accepted input:
 
@@ -14,10 +14,10 @@ Accepted input:
   feature column that is absent or appears more than once is refused by name.
   The table libraries are recognised by their attributes, never imported.
 
-Numbers are Python and numpy integers and floats, fractions and decimals (a Parquet
-decimal column), widened to float64. Missing values (None, nulls, pandas NA,
-masked entries, NaN) become NaN, which
-every kernel treats as invalid input, so such a row follows ``invalid_input``.
+Numbers are Python and numpy integers and floats, fractions and decimals (a
+Parquet decimal column), widened to float64. Missing values (None, nulls, pandas
+NA, masked entries, NaN) become NaN, which every kernel treats as invalid input,
+so such a row follows ``invalid_input``.
 Booleans, text, dates and complex numbers are refused rather than guessed at: a
 boolean column taken as 0/1 or text parsed as numbers would decide on values the
 caller never wrote.
@@ -191,26 +191,30 @@ def _as_float(values: object, what: str) -> np.ndarray:
 def _objects_as_float(data: np.ndarray, what: str) -> np.ndarray:
     result = np.empty(data.shape, dtype=np.float64)
     for index, value in np.ndenumerate(data):
-        place = ", ".join(f"{axis} {i}" for axis, i in zip(("row", "column"), index, strict=False))
-        result[index] = _number(value, f"{what}, {place}" if place else what)
+        result[index] = _number(value, what, index)
     return result
 
 
-def _number(value: object, what: str) -> float:
-    """A Python or numpy number as float; None and pandas NA are missing (NaN); anything else is refused."""
+def _number(value: object, what: str, index: tuple[int, ...] = ()) -> float:
+    """A Python or numpy number as float; None and pandas NA are missing (NaN); anything else is refused,
+    naming ``what`` and, for an element of an array, its row (and column)."""
     if value is None or type(value).__name__ == "NAType":
         return float("nan")
-    if isinstance(value, bool | np.bool_):
-        raise InputError(f"{what} must be a number, got bool {value!r}: booleans are refused; pass 0.0 or 1.0")
-    if not isinstance(value, numbers.Real | decimal.Decimal):  # Real: int, float, Fraction, numpy's numbers
+    if isinstance(value, numbers.Real | decimal.Decimal) and not isinstance(value, bool | np.bool_):
+        try:  # Real: int, float, Fraction and numpy's numbers
+            return float(value)
+        except ValueError:  # a signalling NaN decimal: a NaN, so a missing value
+            return float("nan")
+        except OverflowError:  # an int or fraction beyond float64; str() refuses very long ints, so its bits
+            magnitude: Any = abs(value)
+            problem = f"is an integer of {int(magnitude).bit_length()} bits, beyond the float64 range"
+    elif isinstance(value, bool | np.bool_):
+        problem = f"must be a number, got bool {value!r}: booleans are refused; pass 0.0 or 1.0"
+    else:
         shown = repr(value) if len(repr(value)) <= 40 else repr(value)[:37] + "..."
-        raise InputError(f"{what} must be a number, got {type(value).__name__} {shown}")
-    try:
-        return float(value)
-    except OverflowError:  # an int or fraction beyond float64; its size in bits, since str() refuses very long ints
-        magnitude: Any = abs(value)
-        bits = int(magnitude).bit_length()
-        raise InputError(f"{what} is an integer of {bits} bits, beyond the float64 range") from None
+        problem = f"must be a number, got {type(value).__name__} {shown}"
+    place = ", ".join(f"{axis} {i}" for axis, i in zip(("row", "column"), index, strict=False))
+    raise InputError(f"{what}, {place} {problem}" if place else f"{what} {problem}")
 
 
 def _listed(names: list[Any]) -> str:

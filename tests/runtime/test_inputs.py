@@ -7,6 +7,8 @@ from __future__ import annotations
 
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
+from decimal import Decimal
+from fractions import Fraction
 from pathlib import Path
 from types import ModuleType
 from typing import Any
@@ -319,6 +321,19 @@ def test_decide_one_refuses_values_that_are_not_float64_numbers(
 def test_decide_one_refuses_what_is_not_a_mapping(record: object, packhouse: Rule) -> None:
     with pytest.raises(InputError, match="expected one record as a mapping of feature name to number"):
         packhouse.decide_one(record)  # type: ignore[arg-type]
+
+
+def test_decide_one_takes_decimals_and_fractions_and_a_decimal_nan_is_missing(
+    packhouse: Rule, incoming: np.ndarray
+) -> None:
+    record = dict(zip(packhouse.features, incoming[0].tolist(), strict=True))
+    exact = packhouse.decide_one(record)
+    assert packhouse.decide_one(record | {"brix": Decimal(repr(record["brix"]))}) == exact
+    assert packhouse.decide_one(record | {"brix": Fraction(record["brix"])}) == exact
+    for missing in (Decimal("NaN"), Decimal("sNaN")):
+        assert packhouse.decide_one(record | {"brix": missing}) == "hold_for_inspector"
+    with pytest.raises(InputError, match="'brix' is an integer of 1328 bits"):
+        packhouse.decide_one(record | {"brix": Fraction(10**400, 3)})
 
 
 def test_decide_one_accepts_numpy_and_large_python_numbers(packhouse: Rule, incoming: np.ndarray) -> None:
