@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -13,7 +13,7 @@ from policyc.errors import DataError
 from policyc.evidence.io import DEFAULT_BATCH_ROWS, RowSource, count_rows, data_format, write_rows
 from policyc.runtime import REASONS, Explanation, Rule, kernel
 
-__all__ = ["DecisionCounts", "assess_batch", "decide_file", "deferrals", "explain_columns"]
+__all__ = ["DecisionCounts", "assess_batch", "decide_file", "deferral_text", "deferrals", "explain_columns"]
 
 
 def assess_batch(rule: Rule, features: np.ndarray, data: Path, first_row: int, whose: str = "") -> Explanation:
@@ -35,6 +35,16 @@ def deferrals(rule: Rule, assessment: Explanation) -> dict[str, int]:
     return {reason: int((deferred & (assessment.reason == reason)).sum()) for reason in REASONS}
 
 
+def deferral_text(deferred: Mapping[str, int]) -> str:
+    """Deferrals by reason in words: ``min-risk 9, invalid 3``."""
+    return ", ".join(f"{reason} {n}" for reason, n in deferred.items())
+
+
+def add_counts(total: dict[str, int], more: Mapping[str, int]) -> None:
+    for key, count in more.items():
+        total[key] = total.get(key, 0) + count
+
+
 @dataclass
 class DecisionCounts:
     """Rows per action, and the rows sent to the reject action per reason (empty without a reject option)."""
@@ -50,16 +60,16 @@ class DecisionCounts:
     def add(self, rule: Rule, assessment: Explanation) -> None:
         for index, count in enumerate(np.bincount(assessment.action, minlength=len(rule.actions)).tolist()):
             self.actions[rule.actions[index]] += count
-        for reason, count in deferrals(rule, assessment).items():
-            self.deferred[reason] += count
+        add_counts(self.deferred, deferrals(rule, assessment))
 
     def summary(self) -> str:
         """One line: rows per action with shares, then deferrals by reason."""
         # share = rows with the action / all rows
         text = ", ".join(f"{name} {n} ({n / self.rows:.1%})" for name, n in self.actions.items())
         if self.reject_action is not None:
-            why = ", ".join(f"{reason} {n}" for reason, n in self.deferred.items())
-            text += f"; deferred to {self.reject_action}: {sum(self.deferred.values())} ({why})"
+            text += (
+                f"; deferred to {self.reject_action}: {sum(self.deferred.values())} ({deferral_text(self.deferred)})"
+            )
         return text
 
 

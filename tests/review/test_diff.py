@@ -303,6 +303,9 @@ def test_flip_matrix_and_risks_match_a_direct_computation(packhouse_rules: tuple
     assert np.isclose(result.empirical_risk[0], loss[a_old, y].mean(), rtol=1e-12)
     assert np.isclose(result.empirical_risk[1], loss[a_new, y].mean(), rtol=1e-12)
     assert result.reject_rate_new == pytest.approx((a_new == 3).mean(), abs=0)
+    # every row is valid here, so each rule's deferrals are all by risk
+    assert result.deferred_old == {"min-risk": int((a_old == 3).sum()), "invalid": 0}
+    assert result.deferred_new == {"min-risk": int((a_new == 3).sum()), "invalid": 0}
 
 
 def test_the_paired_interval_agrees_with_scipy_bootstrap() -> None:

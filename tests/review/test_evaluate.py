@@ -227,3 +227,21 @@ def test_a_curve_picture_is_written(hand: tuple[Path, Path], tmp_path: Path) -> 
         main, ["evaluate", str(policy), str(data), "--label", "truth", "--plot-curve", str(picture)]
     )
     assert result.exit_code == 0 and picture.stat().st_size > 1000
+
+
+def test_deferrals_are_counted_by_reason(hand: tuple[Path, Path], tmp_path: Path) -> None:
+    policy, data = hand
+    text = policy.read_text(encoding="utf-8") + "invalid_input: reject\n"
+    policy.write_text(text, encoding="utf-8")
+    with data.open("a", encoding="utf-8") as handle:
+        handle.write("nan,0.5,ok\n0.3,0.3,bad\n")  # NaN, and probabilities summing to 0.6: both invalid
+    result = evaluate(load_rule_or_policy(policy), data, "truth")
+    # hand-computed: the two rows held at q = 0.10 and 0.15 by risk, the two appended rows as invalid
+    assert result.deferred == {"min-risk": 2, "invalid": 2}
+    assert sum(result.deferred.values()) == result.rejected
+    shown = CliRunner().invoke(main, ["evaluate", str(policy), str(data), "--label", "truth"])
+    assert "(hold; min-risk 2, invalid 2)" in shown.stdout
+    report = json.loads(
+        CliRunner().invoke(main, ["evaluate", str(policy), str(data), "--label", "truth", "--format", "json"]).stdout
+    )
+    assert report["deferred_by_reason"] == {"min-risk": 2, "invalid": 2}

@@ -68,6 +68,7 @@ significant digits, NaN/inf as null)::
         "source", "rows", "invalid_rows", "features_differ": bool, "notes": [str],
         "flips": {"old_actions": [str], "new_actions": [str], "counts": [[int]]},
         "flip_rate", "reject_rate": {"old", "new"},
+        "deferred_by_reason": {"old", "new"} (each {"min-risk": n, "invalid": n}, null without a reject option),
         "expected_risk": null | {"basis", "rows", "old_decisions", "new_decisions", "difference"},
         "empirical_risk": null | {"label", "basis", "rows", "old", "new",
                                   "difference": {"estimate", "low", "high", "confidence",

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from collections.abc import Iterator
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Annotated
 
@@ -11,7 +11,7 @@ import numpy as np
 from pydantic import Field, computed_field
 from pydantic.dataclasses import dataclass as report
 
-from policyc.batch import assess_batch
+from policyc.batch import add_counts, assess_batch, deferrals
 from policyc.evidence.io import DEFAULT_BATCH_ROWS, DataError, read_feature_batches
 from policyc.review.diff.posterior import same_actions
 from policyc.review.shared.bootstrap import (
@@ -41,6 +41,14 @@ class FlipCounts:
 class RejectRates:
     old: float | None
     new: float | None
+
+
+@report(frozen=True, config=REPORT_CONFIG)
+class Deferrals:
+    """Rows each rule sends to its reject action, per reason (``min-risk``, ``invalid``); None without one."""
+
+    old: dict[str, int] | None
+    new: dict[str, int] | None
 
 
 @report(frozen=True, config=REPORT_CONFIG)
@@ -78,6 +86,9 @@ class DataDiff:
     invalid_rows: int  # rows the new rule cannot evaluate (sent per its invalid_input)
     reject_rate_old: Annotated[float | None, Field(exclude=True)]
     reject_rate_new: Annotated[float | None, Field(exclude=True)]
+    # rows each rule sends to its reject action, per reason (empty without a reject option)
+    deferred_old: Annotated[dict[str, int], Field(exclude=True)]
+    deferred_new: Annotated[dict[str, int], Field(exclude=True)]
     # (old decisions, new decisions, rows) under the new model
     expected_risk: Annotated[tuple[float, float, int] | None, Field(exclude=True)]
     # (old, new, rows) by the new loss matrix
@@ -107,6 +118,14 @@ class DataDiff:
     @property
     def reject_rates(self) -> RejectRates:
         return RejectRates(self.reject_rate_old, self.reject_rate_new)
+
+    @computed_field  # type: ignore[prop-decorator]
+    @property
+    def deferred_by_reason(self) -> Deferrals:
+        return Deferrals(
+            self.deferred_old if self.reject_rate_old is not None else None,
+            self.deferred_new if self.reject_rate_new is not None else None,
+        )
 
     @computed_field(alias="expected_risk")  # type: ignore[prop-decorator]
     @property
@@ -144,6 +163,8 @@ class _DataTally:
     risk_new: float = 0.0
     risk_rows: int = 0
     invalid: int = 0
+    deferred_old: dict[str, int] = field(default_factory=dict)
+    deferred_new: dict[str, int] = field(default_factory=dict)
 
     def add(self, X: tuple[np.ndarray, np.ndarray], codes: np.ndarray | None, path: Path, first_row: int) -> None:
         """Decide one batch with both rules; ``X`` holds each rule's feature columns."""
@@ -154,6 +175,8 @@ class _DataTally:
             before.action * n_new + after.action, minlength=len(self.old.actions) * n_new
         ).reshape(len(self.old.actions), n_new)
         self.invalid += int((~after.valid).sum())
+        add_counts(self.deferred_old, deferrals(self.old, before))
+        add_counts(self.deferred_new, deferrals(self.new, after))
         mapped = self.mapping[before.action]
         valid = after.valid
         if (mapped >= 0).all():
@@ -242,6 +265,8 @@ def _finish(tally: _DataTally, data: Path, label: str | None, confidence: float,
         tally.invalid,
         _reject_share(old, flips.sum(axis=1)),
         _reject_share(new, flips.sum(axis=0)),
+        tally.deferred_old,
+        tally.deferred_new,
         expected,
         empirical,
         difference,

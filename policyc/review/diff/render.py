@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 
+from policyc.batch import deferral_text
 from policyc.render import dumps, markdown_table, number, share, text_table
 from policyc.review.diff import DiffReport
 from policyc.review.diff.data import DataDiff
@@ -118,8 +119,13 @@ def _risk_lines(report: DiffReport, data: DataDiff) -> list[str]:
 def _rates(data: DataDiff) -> str:
     return (
         f"flip rate: {share(data.flip_rate)} ({data.flipped} of {data.rows} rows); "
-        f"reject rate: old {share(data.reject_rate_old)}, new {share(data.reject_rate_new)}"
+        f"reject rate: old {share(data.reject_rate_old)}{_by_reason(data.deferred_old)}, "
+        f"new {share(data.reject_rate_new)}{_by_reason(data.deferred_new)}"
     )
+
+
+def _by_reason(deferred: dict[str, int]) -> str:
+    return f" ({deferral_text(deferred)})" if deferred else ""
 
 
 def _text(report: DiffReport) -> str:

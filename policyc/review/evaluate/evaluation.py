@@ -12,6 +12,7 @@ Definitions (``loss`` is the rule's matrix, reject row last, in its loss_unit):
   loss with one action per class this is a misclassification;
 * error rate: errors / all rows (Chow's E); error on accepted: errors / accepted rows;
 * reject rate: deferred rows / all rows (invalid rows deferred under ``invalid_input: reject`` included);
+  the deferred rows are also counted by reason (``min-risk``, ``invalid``);
 * risk-reject curve: the reject cost c is swept over a grid from 0 to V, the
   largest minimum risk over all posteriors (deferring is never chosen for c ≥ V),
   plus the rule's own cost. At each c a row takes its minimum-risk action if
@@ -31,7 +32,8 @@ JSON shape (``policyc evaluate --format json``; keys sorted, floats rounded to
 
     {
       "rule": {"source", "kind", "policy", "revision", "content_sha256", "policy_sha256", "training_sha256"},
-      "data": str, "label": str, "rows": int, "invalid_rows": int, "loss_unit": str|null,
+      "data": str, "label": str, "rows": int, "invalid_rows": int,
+      "deferred_by_reason": {"min-risk": int, "invalid": int}|null, "loss_unit": str|null,
       "classes": [str], "actions": [str], "reject_action": str|null, "reject_cost": float|null,
       "risk": {"estimate", "low", "high", "confidence", "resamples", "seed", "method"},
       "error_rate": float, "accepted_error_rate": float|null, "reject_rate": float,
@@ -56,7 +58,7 @@ import numpy as np
 from pydantic import Field, computed_field
 from pydantic.dataclasses import dataclass
 
-from policyc.batch import assess_batch
+from policyc.batch import add_counts, assess_batch, deferrals
 from policyc.evidence.io import DEFAULT_BATCH_ROWS, DataError, read_feature_batches
 from policyc.geometry.reach import reject_reach_value
 from policyc.review.shared.bootstrap import (
@@ -200,6 +202,8 @@ class Evaluation:
     label: str
     confusion: Annotated[np.ndarray, Field(exclude=True)]  # (K, A) rows per (true class, action)
     invalid_rows: int
+    # rows sent to the reject action, per reason (empty without a reject option)
+    deferred: Annotated[dict[str, int], Field(exclude=True)]
     risk: BootstrapInterval
     curve: Annotated[tuple[CurvePoint, ...], Field(exclude=True)]
     reach_value: Annotated[float, Field(exclude=True)]
@@ -236,6 +240,12 @@ class Evaluation:
     @property
     def reject_rate(self) -> float:
         return self.rejected / self.rows  # R = deferred rows / all rows
+
+    @computed_field  # type: ignore[prop-decorator]
+    @property
+    def deferred_by_reason(self) -> dict[str, int] | None:
+        """Rows sent to the reject action per reason (``min-risk``, ``invalid``); None without a reject option."""
+        return self.deferred if self.rule.reject_action is not None else None
 
     @computed_field  # type: ignore[prop-decorator]
     @property
@@ -414,10 +424,12 @@ def evaluate(
     calibration = _CalibrationTally(len(rule.classes)) if rule.evidence == "posterior" else None
     confusion = np.zeros((len(rule.classes), len(rule.actions)), dtype=np.int64)
     invalid = 0
+    deferred: dict[str, int] = {}
     for batch in read_feature_batches(data, rule.features, label=label, batch_rows=batch_rows):
         codes = label_codes(data, label, batch, rule.classes)
         assessed = assess_batch(rule, batch.features, data, batch.first_row)
         invalid += int((~assessed.valid).sum())
+        add_counts(deferred, deferrals(rule, assessed))
         confusion += np.bincount(codes * len(rule.actions) + assessed.action, minlength=confusion.size).reshape(
             confusion.shape
         )
@@ -435,6 +447,7 @@ def evaluate(
         label,
         confusion,
         invalid,
+        deferred,
         risk,
         curve.points(rows, own),
         value,

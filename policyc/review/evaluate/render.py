@@ -6,6 +6,7 @@ from collections.abc import Callable, Sequence
 
 import numpy as np
 
+from policyc.batch import deferral_text
 from policyc.render import dumps, markdown_table, number, share, text_table
 from policyc.review.evaluate.evaluation import ECE_WARNING, ERROR_DEFINITION, CalibrationReport, CurvePoint, Evaluation
 
@@ -37,7 +38,8 @@ def _headline(evaluation: Evaluation) -> list[str]:
         f"seed {risk.seed}; loss matrix of the rule, reject cost included)",
         f"error rate: {share(evaluation.error_rate)} of all rows, {share(evaluation.accepted_error_rate)} "
         f"of accepted rows ({ERROR_DEFINITION})",
-        f"reject rate: {share(evaluation.reject_rate)}" + (f" ({reject})" if reject else " (no reject option)"),
+        f"reject rate: {share(evaluation.reject_rate)}"
+        + (f" ({reject}; {deferral_text(evaluation.deferred)})" if reject else " (no reject option)"),
         f"invalid rows: {evaluation.invalid_rows}",
     ]
 
