@@ -300,7 +300,10 @@ def _diagnostic_from_pydantic(error: Mapping[str, Any], data: Mapping[str, Any])
         message = f"unknown key {path[-1]!r}; check its spelling against the policy schema"
     elif message.startswith("Value error, "):
         message = message.removeprefix("Value error, ")
-    return Diagnostic(code=code, severity=Severity.ERROR, message=message, path=path, hint=_hint(error))
+    hint = _hint(error)
+    if hint is not None:
+        message = f"expected text here, not the number {error['input']}"
+    return Diagnostic(code=code, severity=Severity.ERROR, message=message, path=path, hint=hint)
 
 
 def _hint(error: Mapping[str, Any]) -> str | None:

@@ -150,12 +150,7 @@ class _StrictComposer(Composer, Resolver):  # type: ignore[misc]  # PyYAML ships
                 "a policy is a short reviewed text; split it, or check that it is the file you meant",
             )
         if self._depth >= MAX_NESTING:
-            raise _Refusal(
-                "nesting-too-deep",
-                f"the policy nests deeper than {MAX_NESTING} levels",
-                event.start_mark,
-                "a policy nests a few levels (loss: action: class: value); check the brackets",
-            )
+            raise _Refusal("nesting-too-deep", _TOO_DEEP, event.start_mark, _TOO_DEEP_HINT)
 
     def _compose_checked(self, parent: Node | None, index: Any, event: Any) -> Node | None:
         if isinstance(event, AliasEvent):
@@ -177,6 +172,14 @@ def _strict_loader(event_parser: Any) -> type:
 
 
 _StrictLoader = _strict_loader(_FastEventParser)
+
+
+_TOO_DEEP = f"the policy nests deeper than {MAX_NESTING} levels"
+_TOO_DEEP_HINT = "a policy nests a few levels (loss: action: class: value); check the brackets"
+
+
+def _too_deep(name: str, mark: Any) -> PolicySourceError:
+    return _source_error(name, "nesting-too-deep", _TOO_DEEP, _position(mark) if mark else None, _TOO_DEEP_HINT)
 
 
 class _Refusal(Exception):
@@ -272,9 +275,9 @@ def parse_source(text: str, name: str = "<policy>", base_dir: FilePath | None = 
     except yaml.MarkedYAMLError as exc:
         mark = exc.problem_mark or exc.context_mark
         message = " ".join(p for p in (exc.context, exc.problem) if p) or "invalid YAML"
-        # libyaml stops at 1,000 levels while scanning ahead, before our composer counts MAX_NESTING
-        code = "nesting-too-deep" if "nesting depth" in message else "yaml-syntax"
-        raise _source_error(name, code, message, _position(mark) if mark else None) from None
+        if "nesting depth" in message:  # libyaml stops at 1,000 levels while scanning ahead of our composer
+            raise _too_deep(name, mark) from None
+        raise _source_error(name, "yaml-syntax", message, _position(mark) if mark else None) from None
     if root is None or (isinstance(root, ScalarNode) and root.value == "" and root.style is None):
         raise _source_error(name, "policy-empty", "the file holds no policy", Position(1, 1))
     if not isinstance(root, MappingNode):
