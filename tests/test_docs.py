@@ -58,3 +58,25 @@ def test_every_promise_under_bad_input_names_a_test_that_exists() -> None:
         file, name = reference.split("::")
         source = (ROOT / file).read_text(encoding="utf-8") if (ROOT / file).is_file() else ""
         assert re.search(rf"^\s*def {name}\(", source, re.M), f"README promise names a missing test: {reference}"
+
+
+def _readme_hints() -> dict[str, str]:
+    readme = (ROOT / "README.md").read_text(encoding="utf-8")
+    table = readme.split("### Diagnostics", 1)[1].split("\n## ", 1)[0]
+    hints = {}
+    for row in table.splitlines():
+        if row.startswith("| `"):
+            cells = [cell.strip() for cell in row.strip().strip("|").split("|")]
+            hints |= dict.fromkeys(re.findall(r"`([a-z0-9-]+)`", cells[0]), cells[-1])
+    return hints
+
+
+def test_every_code_carries_the_readme_tables_advice() -> None:
+    # the JSON hint is never null where the table has one: Diagnostic falls back to HINTS, which is the table
+    from policyc.language.diagnostics import Diagnostic, Severity
+    from policyc.language.hints import HINTS
+
+    assert _readme_hints() == HINTS
+    for code, advice in HINTS.items():
+        assert Diagnostic(code, Severity.ERROR, "m").hint == advice
+    assert Diagnostic("unknown-key", Severity.ERROR, "m", hint="its own").hint == "its own"

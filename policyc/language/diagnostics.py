@@ -13,6 +13,7 @@ from dataclasses import dataclass, replace
 from enum import StrEnum
 
 from policyc.errors import PolicycError
+from policyc.language.hints import HINTS
 
 __all__ = [
     "CompileError",
@@ -57,6 +58,10 @@ class Diagnostic:
     line: int | None = None
     col: int | None = None
     hint: str | None = None
+
+    def __post_init__(self) -> None:
+        if self.hint is None:  # every code carries the README's advice unless the finding has its own
+            object.__setattr__(self, "hint", HINTS.get(self.code))
 
     @property
     def is_error(self) -> bool:

@@ -8,7 +8,9 @@ of :mod:`policyc.language.checks`, which reports every disagreement at once.
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+import difflib
+import functools
+from collections.abc import Iterable, Mapping
 from typing import Annotated, Any, Literal
 
 import numpy as np
@@ -297,13 +299,41 @@ def _diagnostic_from_pydantic(error: Mapping[str, Any], data: Mapping[str, Any])
     if error["type"] == "missing":
         message = f"required key {path[-1]!r} is missing"
     elif error["type"] == "extra_forbidden":
-        message = f"unknown key {path[-1]!r}; check its spelling against the policy schema"
+        message = f"unknown key {path[-1]!r}" + did_you_mean(str(path[-1]), _policy_keys())
+    elif error["type"] in ("float_type", "int_type") and _is_quoted_number(error.get("input")):
+        message = f"{error['input']!r} is quoted, so it is text; unquote it to give the number"
     elif message.startswith("Value error, "):
         message = message.removeprefix("Value error, ")
     hint = _hint(error)
     if hint is not None:
         message = f"expected text here, not the number {error['input']}"
     return Diagnostic(code=code, severity=Severity.ERROR, message=message, path=path, hint=hint)
+
+
+def did_you_mean(name: str, known: Iterable[str]) -> str:
+    """``"; did you mean 'priors'?"`` for the closest known spellings, or a pointer to the schema."""
+    close = difflib.get_close_matches(name, sorted(set(known)), n=2, cutoff=0.6)
+    if not close:
+        return "; check its spelling against the policy schema"
+    return "; did you mean " + " or ".join(repr(c) for c in close) + "?"
+
+
+@functools.cache
+def _policy_keys() -> frozenset[str]:
+    """Every key the policy language knows, at any depth (the properties of every model)."""
+    schema = Policy.model_json_schema()
+    models = [schema, *schema.get("$defs", {}).values()]
+    return frozenset(key for model in models for key in model.get("properties", {}))
+
+
+def _is_quoted_number(value: Any) -> bool:
+    if not isinstance(value, str):
+        return False
+    try:
+        float(value)
+    except ValueError:
+        return False
+    return True
 
 
 def _hint(error: Mapping[str, Any]) -> str | None:

@@ -64,7 +64,8 @@ def test_json_path(path: tuple[str | int, ...], rendered: str) -> None:
 def test_render_text_line_format() -> None:
     diagnostic = diag("unreachable-action", Severity.WARNING, ("loss", "juice"), 12, 5, message="lower its losses")
     assert render_text([diagnostic]) == (
-        "policy.yaml:12:5: warning[unreachable-action] lower its losses (at $.loss.juice)"
+        "policy.yaml:12:5: warning[unreachable-action] lower its losses (at $.loss.juice)\n"
+        "    hint: no posterior makes it the cheapest"  # the README table's advice for the code
     )
 
 
@@ -92,6 +93,7 @@ def test_render_text_caret_excerpt() -> None:
     text = render_text([diag("priors-do-not-sum-to-one", line=2, col=9)], lines, show_source=True)
     assert text.splitlines() == [
         "policy.yaml:2:9: error[priors-do-not-sum-to-one] do something",
+        "    hint: they sum to 1 (±10⁻⁶)",
         "    priors: {a: 0.6, b: 0.6}",
         "            ^",
     ]
@@ -118,9 +120,10 @@ def test_render_json_stable_shape() -> None:
     diagnostics = [
         diag("dominated-action", Severity.WARNING, ("loss", "juice", 0), 7, 3, hint="remove it"),
         diag("policy-empty", file=None),
+        diag("not-a-documented-code", file=None),
     ]
     data = json.loads(render_json(diagnostics))
-    assert isinstance(data, list) and len(data) == 2
+    assert isinstance(data, list) and len(data) == 3
     keys = {"code", "severity", "message", "path", "file", "line", "col", "hint"}
     assert all(set(item) == keys for item in data)
     assert data[0] == {
@@ -134,7 +137,8 @@ def test_render_json_stable_shape() -> None:
         "hint": "remove it",
     }
     assert data[1]["path"] == "$"
-    assert data[1]["file"] is None and data[1]["line"] is None and data[1]["hint"] is None
+    assert data[1]["file"] is None and data[1]["line"] is None and data[1]["hint"] == "write the policy"
+    assert data[2]["hint"] is None  # no advice in the README's table
 
 
 def test_render_json_of_nothing_is_an_empty_list() -> None:

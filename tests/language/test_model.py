@@ -292,3 +292,23 @@ def test_every_error_is_reported_at_once() -> None:
         ("unknown-choice", 11, 16),
         ("unknown-key", 12, 1),
     ]
+
+
+def test_a_mistyped_key_gets_a_did_you_mean_and_the_tables_hint() -> None:
+    text = "policy: p\nclasses: [a, b]\nprior: {a: 0.5, b: 0.5}\nactions: [x]\nloss: {x: {a: 0, b: 1}}\n"
+    text += "evidence: {kind: log-likelihood, columns: {a: la, b: lb}}\n"
+    with pytest.raises(PolicySchemaError) as raised:
+        build_policy(parse_source(text, "p.yaml"))
+    (unknown,) = [d for d in raised.value.diagnostics if d.code == "unknown-key"]
+    assert "did you mean 'priors'?" in unknown.message and unknown.line == 3
+    assert unknown.hint == "fix the spelling or remove it"
+
+
+@pytest.mark.parametrize("quoted", ['"0.5"', "'1e-3'", '"7"'])
+def test_a_quoted_number_says_unquote_it(quoted: str) -> None:
+    text = f"policy: p\nclasses: [a, b]\npriors: {{a: {quoted}, b: 0.5}}\nactions: [x]\nloss: {{x: {{a: 0, b: 1}}}}\n"
+    text += "evidence: {kind: log-likelihood, columns: {a: la, b: lb}}\n"
+    with pytest.raises(PolicySchemaError) as raised:
+        build_policy(parse_source(text, "p.yaml"))
+    (quoted_number,) = [d for d in raised.value.diagnostics if d.path == ("priors", "a")]
+    assert quoted_number.code == "expected-number" and "unquote it" in quoted_number.message
