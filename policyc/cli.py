@@ -16,10 +16,12 @@ from policyc import __version__
 # Each command imports what it needs inside its body: `policyc --help` loads neither numpy, scipy, pyarrow,
 # pydantic nor matplotlib (tests/test_startup.py), and `policyc check` loads no pyarrow.
 if TYPE_CHECKING:
+    from policyc.batch import DecisionCounts
     from policyc.language.checks import CheckReport
     from policyc.language.model import Policy
     from policyc.review.plot import FigureSize
     from policyc.review.shared.loading import LoadedRule
+    from policyc.runtime import Rule
 
 __all__ = ["main"]
 
@@ -269,8 +271,8 @@ class _ProgressDisplay:
     Each pass over the data (Ledoit-Wolf reads the training file twice) gets its own bar or count, named.
     """
 
-    def __init__(self, label: str) -> None:
-        self.label = label
+    def __init__(self, label: str, unit: str = "rows") -> None:
+        self.label, self.unit = label, unit  # unit: rows, or partitions on a cluster
         self.stage = ""
         self.done = 0
         self.bar: Any = None
@@ -286,7 +288,7 @@ class _ProgressDisplay:
                 self.bar = click.progressbar(length=total, label=label, file=sys.stderr)
             self.bar.update(rows)
         else:
-            click.echo(f"\r{label}: {self.done:,} rows", nl=False, err=True)
+            click.echo(f"\r{label}: {self.done:,} {self.unit}", nl=False, err=True)
 
     def close(self) -> None:
         if self.bar is not None:
@@ -308,6 +310,35 @@ def _progress(label: str) -> Iterator[_ProgressDisplay | None]:
         display.close()
 
 
+_SCHEDULER = click.option(
+    "--scheduler",
+    metavar="ADDRESS|local",
+    help="Run over the data's files on a Dask cluster (the dask extra): a scheduler address, "
+    "or local to start one on this machine. Results equal a single-process run.",
+)
+_WORKERS = click.option(
+    "--workers", type=click.IntRange(min=1), help="Worker processes of --scheduler local (default: one per core)."
+)
+
+
+@contextmanager
+def _partitions(scheduler: str | None, workers: int | None, progress: _ProgressDisplay | None) -> Iterator[Any]:
+    """A Dask partition runner when --scheduler is given (progress then counts partitions), else None."""
+    if scheduler is None:
+        if workers is not None:
+            raise click.UsageError("--workers needs --scheduler local")
+        yield None
+        return
+    try:
+        from policyc.cluster import DaskPartitions, connect
+    except ImportError as error:
+        raise click.ClickException(f"--scheduler needs the dask extra: pip install 'policyc[dask]' ({error})") from None
+    if progress is not None:
+        progress.unit = "partitions"
+    with connect(scheduler, workers) as client:
+        yield DaskPartitions(client, progress)
+
+
 @main.command(name="compile", epilog=CAUTION)
 @click.argument("policy", type=click.Path(dir_okay=False, path_type=Path))
 @click.option(
@@ -325,13 +356,17 @@ def _progress(label: str) -> Iterator[_ProgressDisplay | None]:
     help="Also write a standalone NumPy module with the same decisions.",
 )
 @QUIET_OPTION
-def compile_command(policy: Path, rule_file: Path, module_file: Path | None) -> None:
+@_SCHEDULER
+@_WORKERS
+def compile_command(
+    policy: Path, rule_file: Path, module_file: Path | None, scheduler: str | None, workers: int | None
+) -> None:
     """Check POLICY, fit its evidence model and write the frozen rule."""
     from policyc.compiler import compile_policy, write_artefact, write_module
     from policyc.language.diagnostics import render_text
 
-    with _progress("fitting") as progress:
-        compiled = compile_policy(policy, progress)
+    with _progress("fitting") as progress, _partitions(scheduler, workers, progress) as partitions:
+        compiled = compile_policy(policy, progress, partitions)
     if compiled.diagnostics:
         click.echo(render_text(compiled.diagnostics), err=True)
     digest = write_artefact(compiled.rule, rule_file)
@@ -347,15 +382,36 @@ def compile_command(policy: Path, rule_file: Path, module_file: Path | None) -> 
         click.echo(f"standalone module -> {module_file}")
 
 
+def _decide_partitions(
+    rule: Rule,
+    rule_file: Path,
+    data: Path,
+    output: Path,
+    explain: bool,
+    scheduler: str | None,
+    workers: int | None,
+    progress: _ProgressDisplay | None,
+) -> DecisionCounts:
+    from policyc.compiler.artefact import artefact_bytes
+    from policyc.partitioned import DecideSettings, decide_partitions, plan_partitions
+
+    partitions = plan_partitions(data, output)
+    # the canonical encoding: a rule file's own bytes, or the bytes a policy given as RULE_FILE compiles to
+    settings = DecideSettings(artefact_bytes(rule), str(rule_file), explain)
+    with _partitions(scheduler, workers, progress) as runner:
+        return decide_partitions(settings, partitions, runner, progress)
+
+
 @main.command(epilog=CAUTION)
 @click.argument("rule_file", type=click.Path(dir_okay=False, path_type=Path))
-@click.argument("data", type=click.Path(dir_okay=False, path_type=Path))
+@click.argument("data", type=click.Path(path_type=Path))
 @click.option(
     "-o",
     "--output",
     required=True,
-    type=click.Path(dir_okay=False, path_type=Path),
-    help="Output file, CSV or Parquet by its suffix.",
+    type=click.Path(path_type=Path),
+    help="Output file, CSV or Parquet by its suffix; for a directory or glob DATA (or with --scheduler), "
+    "a directory that receives one output file per input file, under the same name.",
 )
 @click.option(
     "--explain",
@@ -363,8 +419,12 @@ def compile_command(policy: Path, rule_file: Path, module_file: Path | None) -> 
     help="Also write posteriors, risks, runner-up action, margin and reason (min-risk, invalid).",
 )
 @QUIET_OPTION
-def decide(rule_file: Path, data: Path, output: Path, explain: bool) -> None:
-    """Decide every row of DATA (CSV or Parquet) with RULE_FILE; add an `action` column.
+@_SCHEDULER
+@_WORKERS
+def decide(
+    rule_file: Path, data: Path, output: Path, explain: bool, scheduler: str | None, workers: int | None
+) -> None:
+    """Decide every row of DATA (CSV or Parquet; a file, directory or glob) with RULE_FILE; add an `action` column.
 
     RULE_FILE may also be a policy file (checked and compiled in memory, nothing written).
     """
@@ -372,8 +432,12 @@ def decide(rule_file: Path, data: Path, output: Path, explain: bool) -> None:
     from policyc.files import terminate_like_interrupt
 
     rule = _load_subject(rule_file).rule
+    partitioned = scheduler is not None or data.is_dir() or not data.is_file()
     with terminate_like_interrupt(), _progress("deciding") as progress:
-        counts = decide_file(rule, data, output, explain, progress)
+        if partitioned:
+            counts = _decide_partitions(rule, rule_file, data, output, explain, scheduler, workers, progress)
+        else:
+            counts = decide_file(rule, data, output, explain, progress)
     click.echo(f"{counts.rows} rows -> {output}: {counts.summary()}")
 
 

@@ -49,6 +49,10 @@ class FitProblem(PolicycError, ValueError):
         super().__init__(message)
         self.code, self.hint, self.path = code, hint, tuple(path)
 
+    def __reduce__(self) -> tuple[type[FitProblem], tuple[str, str, str | None, tuple[str | int, ...]]]:
+        # raised on a Dask worker, it is pickled back to the client: rebuild it with every field
+        return FitProblem, (self.code, self.message, self.hint, self.path)
+
     def as_json(self) -> dict[str, object]:
         return {**super().as_json(), "code": self.code, "hint": self.hint}
 

@@ -207,3 +207,46 @@ def two_class_text(**overrides: Any) -> str:
         "evidence": loglik_evidence(classes),
     }
     return policy_text(**(settings | overrides))
+
+
+def write_partitions(
+    directory: Path, X: np.ndarray, labels: Sequence[str], n_files: int, suffix: str = ".parquet"
+) -> list[Path]:
+    """Split rows in order into ``n_files`` files ``part-00.parquet`` … of features ``f0`` … and ``label``."""
+    import pyarrow as pa
+    import pyarrow.csv as pacsv
+    import pyarrow.parquet as pq
+
+    directory.mkdir(parents=True, exist_ok=True)
+    paths = []
+    for index, rows in enumerate(np.array_split(np.arange(X.shape[0]), n_files)):
+        columns = {f"f{j}": X[rows, j] for j in range(X.shape[1])} | {"label": [labels[r] for r in rows]}
+        table = pa.table(columns)
+        path = directory / f"part-{index:02d}{suffix}"
+        (pq.write_table if suffix == ".parquet" else pacsv.write_csv)(table, path)
+        paths.append(path)
+    return paths
+
+
+def wine_policy_text(
+    training: str, shrinkage: str = "auto", covariance: str = "full", invalid_input: str = "error"
+) -> str:
+    """A three-class 0-1 policy with a reject option on the 13 wine features ``f0`` … ``f12``."""
+    classes = ["c0", "c1", "c2"]
+    evidence = {
+        "kind": "gaussian",
+        "covariance": covariance,
+        "shrinkage": shrinkage,
+        "features": names("f", 13),
+        "training": {"data": training, "label": "label"},
+    }
+    loss = 1.0 - np.eye(3)
+    return policy_text(
+        classes=classes,
+        priors="training",
+        actions=names("a", 3),
+        loss=loss,
+        evidence=evidence,
+        reject_cost=0.2,
+        invalid_input=invalid_input,
+    )

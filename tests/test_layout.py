@@ -25,6 +25,8 @@ ALLOWED: dict[str, set[str]] = {
     "evidence": {"language", "files", "errors"},
     "compiler": {"language", "evidence", "runtime", "files", "render", "errors", "policyc"},
     "batch": {"evidence", "runtime", "errors"},
+    "partitioned": {"batch", "evidence", "runtime", "files", "errors"},
+    "cluster": {"evidence", "runtime", "errors"},
     "schemas": {"language", "compiler", "review.diff", "review.evaluate", "review.inspect", "review.priors"},
     "review.shared": {"language", "evidence", "compiler", "runtime", "errors"},
     "review.reports": {"errors"},

@@ -18,7 +18,7 @@ from policyc.compiler.limits import (
 )
 from policyc.compiler.manifest import LimitsRecord, RuleManifest
 from policyc.errors import DataError, FitProblem
-from policyc.evidence import FittedEvidence, Progress, fit_evidence
+from policyc.evidence import FittedEvidence, PartitionRunner, Progress, fit_evidence
 from policyc.evidence.calibration import brier_score, expected_calibration_error, log_loss
 from policyc.language.checks import load_checked_policy
 from policyc.language.diagnostics import CompileError, Diagnostic, Severity
@@ -40,11 +40,16 @@ class CompiledPolicy:
     diagnostics: tuple[Diagnostic, ...]
 
 
-def compile_policy(path: str | Path, progress: Progress | None = None) -> CompiledPolicy:
-    """Check, fit and compile a policy file. Raises a PolicyError subclass on any error."""
+def compile_policy(
+    path: str | Path, progress: Progress | None = None, partitions: PartitionRunner | None = None
+) -> CompiledPolicy:
+    """Check, fit and compile a policy file. Raises a PolicyError subclass on any error.
+
+    ``partitions`` runs the fit's per-file statistics (default: this process; ``policyc.cluster`` for Dask).
+    """
     document, policy, diagnostics = load_checked_policy(path)
     try:
-        fitted = fit_evidence(policy, document.base_dir, progress)
+        fitted = fit_evidence(policy, document.base_dir, progress, partitions)
     except FitProblem as problem:
         diagnostic = Diagnostic(problem.code, Severity.ERROR, problem.message, problem.path, hint=problem.hint)
         raise CompileError([document.locate(diagnostic)]) from None

@@ -15,6 +15,7 @@ from __future__ import annotations
 import threading
 from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import dataclass
+from functools import partial
 from pathlib import Path
 
 import numpy as np
@@ -22,8 +23,9 @@ from scipy.linalg import solve_triangular
 
 from policyc.errors import FitProblem
 from policyc.evidence.base import FittedEvidence, Progress
-from policyc.evidence.io import count_rows, read_feature_batches
-from policyc.files import file_sha256
+from policyc.evidence.io import count_rows, data_file_list, read_feature_batches
+from policyc.evidence.partitions import PartitionRunner, SerialPartitions
+from policyc.files import data_sha256
 from policyc.language.model import GaussianEvidence, Policy
 
 __all__ = [
@@ -32,10 +34,15 @@ __all__ = [
     "FitProblem",
     "GaussianFit",
     "Moments",
+    "TrainingColumns",
+    "add_sums",
+    "class_moments_of_file",
     "fit",
     "fit_covariances",
+    "fourth_moments_of_file",
     "kernel_params",
     "ledoit_wolf_intensity",
+    "merge_class_moments",
     "moments_by_class",
     "shrink",
 ]
@@ -266,56 +273,94 @@ def kernel_params(fit: GaussianFit) -> dict[str, np.ndarray]:
     }
 
 
+@dataclass(frozen=True)
+class TrainingColumns:
+    """What a worker needs to read one training file: plain values, cheap to send to another process."""
+
+    features: tuple[str, ...]
+    label: str
+    classes: tuple[str, ...]
+    ignore_unknown_labels: bool
+
+
+def class_moments_of_file(columns: TrainingColumns, path: str, progress: Progress | None) -> list[Moments]:
+    """First pass over one training file: per-class moments (a leaf of the fit's merge tree)."""
+    batches = _checked_batches(columns, Path(path), progress)
+    return moments_by_class(batches, len(columns.classes), len(columns.features))
+
+
+def fourth_moments_of_file(
+    columns: TrainingColumns, means: np.ndarray, path: str, progress: Progress | None
+) -> np.ndarray:
+    """Second (Ledoit-Wolf) pass over one training file, about the class means of all files."""
+    return fourth_moments_by_class(_checked_batches(columns, Path(path), progress), means)
+
+
+def merge_class_moments(first: list[Moments], second: list[Moments]) -> list[Moments]:
+    """Per-class Chan-Golub-LeVeque merge of two disjoint sets of rows (``first`` before ``second``)."""
+    return [a.merge(b) for a, b in zip(first, second, strict=True)]
+
+
+def add_sums(first: np.ndarray, second: np.ndarray) -> np.ndarray:
+    """Σ over the union = Σ over the first set + Σ over the second."""
+    return first + second
+
+
+def _checked_batches(columns: TrainingColumns, path: Path, progress: Progress | None) -> Iterator[Batch]:
+    for batch in read_feature_batches(
+        path, columns.features, columns.label, FIT_BATCH_ROWS, layout="columns", classes=columns.classes
+    ):
+        # a NaN or infinity makes the batch's sum non-finite (finite values can overflow it, hence the recheck)
+        if not np.isfinite(batch.features.sum()):
+            bad = ~np.isfinite(batch.features).all(axis=1)
+            if bad.any():
+                row = batch.first_row + int(np.flatnonzero(bad)[0])
+                raise FitProblem("training-value-not-finite", f"{path}: row {row} has a NaN or infinite feature value")
+        codes = batch.class_codes(columns.classes)
+        unknown = None if columns.ignore_unknown_labels else batch.first_unknown_label(codes)
+        if unknown is not None:
+            raise FitProblem(
+                "unknown-label",
+                f"{path}: column {columns.label!r}, row {unknown[0]}: label {unknown[1]!r} is not a class",
+                "fix the data, add the class, or set ignore_unknown_labels: true",
+                ("evidence", "training"),
+            )
+        if progress is not None:
+            progress(batch.features.shape[0], None)
+        yield batch.features, codes
+
+
 def fit(
-    policy: Policy, evidence: GaussianEvidence, base_dir: Path | None, progress: Progress | None = None
+    policy: Policy,
+    evidence: GaussianEvidence,
+    base_dir: Path | None,
+    progress: Progress | None = None,
+    partitions: PartitionRunner | None = None,
 ) -> FittedEvidence:
-    """Fit class-conditional Gaussians from the training file, streaming it in batches."""
+    """Fit class-conditional Gaussians from the training file(s), streaming each in batches.
+
+    Several files (a directory or glob) are fitted file by file and the statistics merged in the fixed
+    tree of :mod:`policyc.evidence.partitions`, by ``partitions`` (default: this process).
+    """
     path = Path(evidence.training.data)
     if base_dir is not None and not path.is_absolute():
         path = base_dir / path
+    files = data_file_list(path)
     classes = policy.classes
-    n_features = len(evidence.features)
-    digest = _DigestInBackground(path)
-    passes = 2 if evidence.shrinkage == "auto" else 1  # Ledoit-Wolf reads the data a second time
-    total_rows = count_rows(path)
-    passes_begun = 0
-
-    def batches() -> Iterator[Batch]:
-        nonlocal passes_begun
-        passes_begun += 1
-        stage = f"pass {passes_begun} of {passes}" if passes > 1 else ""
-        for batch in read_feature_batches(
-            path, evidence.features, evidence.training.label, FIT_BATCH_ROWS, layout="columns", classes=classes
-        ):
-            # a NaN or infinity makes the batch's sum non-finite (finite values can overflow it, hence the recheck)
-            if not np.isfinite(batch.features.sum()):
-                bad = ~np.isfinite(batch.features).all(axis=1)
-                if bad.any():
-                    row = batch.first_row + int(np.flatnonzero(bad)[0])
-                    raise FitProblem(
-                        "training-value-not-finite", f"{path}: row {row} has a NaN or infinite feature value"
-                    )
-            codes = batch.class_codes(classes)
-            unknown = None if evidence.training.ignore_unknown_labels else batch.first_unknown_label(codes)
-            if unknown is not None:
-                raise FitProblem(
-                    "unknown-label",
-                    f"{path}: column {evidence.training.label!r}, row {unknown[0]}: "
-                    f"label {unknown[1]!r} is not a class",
-                    "fix the data, add the class, or set ignore_unknown_labels: true",
-                    ("evidence", "training"),
-                )
-            if progress is not None:
-                progress(batch.features.shape[0], total_rows, stage)
-            yield batch.features, codes
-
-    moments = moments_by_class(batches(), len(classes), n_features)
+    digest = _DigestInBackground(files)
+    if partitions is None:
+        passes = 2 if evidence.shrinkage == "auto" else 1  # Ledoit-Wolf reads the data a second time
+        partitions = SerialPartitions(progress, _expected_rows(files), passes)
+    columns = TrainingColumns(
+        tuple(evidence.features), evidence.training.label, tuple(classes), evidence.training.ignore_unknown_labels
+    )
+    moments = partitions.tree_reduce(partial(class_moments_of_file, columns), merge_class_moments, files)
     result = fit_covariances(
         moments,
         classes,
         evidence.covariance,
         evidence.shrinkage,
-        lambda means: fourth_moments_by_class(batches(), means),
+        lambda means: partitions.tree_reduce(partial(fourth_moments_of_file, columns, means), add_sums, files),
     )
     counts = dict(zip(classes, result.counts, strict=True))
     intensity_names = ["pooled"] if evidence.covariance == "tied" else list(classes)
@@ -330,21 +375,28 @@ def fit(
     return FittedEvidence(tuple(evidence.features), kernel_params(result), description, counts, digest.result())
 
 
+def _expected_rows(files: Sequence[Path]) -> int | None:
+    """Rows one pass over the files reads, when every file's count is cheap to know."""
+    counts = [count_rows(path) for path in files]
+    return None if None in counts else sum(c for c in counts if c is not None)
+
+
 class _DigestInBackground:
-    """sha256 of the training file, computed on a daemon thread while the fit reads the same file.
+    """sha256 of the training data (:func:`policyc.files.data_sha256`), computed on a daemon thread while the
+    fit reads the same files.
 
     hashlib releases the GIL while it hashes, so the digest costs little wall time beside the decoding.
     If the fit fails first, the thread finishes on its own; it holds no lock and its outcome is dropped.
     """
 
-    def __init__(self, path: Path) -> None:
+    def __init__(self, files: list[Path]) -> None:
         self._outcome: list[str | Exception] = []
-        self._thread = threading.Thread(target=self._run, args=(path,), name="policyc-sha256", daemon=True)
+        self._thread = threading.Thread(target=self._run, args=(files,), name="policyc-sha256", daemon=True)
         self._thread.start()
 
-    def _run(self, path: Path) -> None:
+    def _run(self, files: list[Path]) -> None:
         try:
-            self._outcome.append(file_sha256(path))
+            self._outcome.append(data_sha256(files))
         except Exception as exc:  # re-raised by result(), in the caller's thread
             self._outcome.append(exc)
 

@@ -25,7 +25,7 @@ import pyarrow.parquet as pq
 
 from policyc.errors import DataError
 from policyc.evidence._csv_records import CsvRecords, RecordError, split_records
-from policyc.files import atomic_path, same_file
+from policyc.files import DataFilesError, atomic_path, data_files, same_file
 
 __all__ = [
     "DEFAULT_BATCH_ROWS",
@@ -36,6 +36,7 @@ __all__ = [
     "RowSource",
     "TableWriter",
     "count_rows",
+    "data_file_list",
     "data_format",
     "read_ahead",
     "read_feature_batches",
@@ -265,7 +266,7 @@ def _parquet_batches(
     # column, so memory stays bounded whatever the file and row-group sizes. use_threads=False: decoding one
     # batch on several threads saves little next to the caller's own work per batch, and every decoding thread
     # keeps buffers of its own (about 40 MB more peak memory for 33 columns, tests/benchmarks/bench_fit.py).
-    handle = pq.ParquetFile(path, pre_buffer=False, buffer_size=PARQUET_READ_BUFFER)
+    handle = _parquet_file(path, pre_buffer=False, buffer_size=PARQUET_READ_BUFFER)
     rows_before = 0
     for batch in handle.iter_batches(
         batch_size=batch_rows, columns=list(columns) if columns is not None else None, use_threads=False
@@ -281,6 +282,14 @@ def _parquet_batches(
         rows_before += batch.num_rows
 
 
+def _parquet_file(path: Path, pre_buffer: bool = False, buffer_size: int = 0) -> pq.ParquetFile:
+    """Open a Parquet file; a file that is not Parquet (or is truncated) is a DataError naming it."""
+    try:
+        return pq.ParquetFile(path, pre_buffer=pre_buffer, buffer_size=buffer_size)
+    except (pa.ArrowInvalid, OSError) as exc:
+        raise DataError(f"{path}: cannot read as Parquet: {str(exc).splitlines()[0]}") from None
+
+
 def _as_float(path: Path, name: str, array: pa.Array, rows_before: int) -> pa.Array:
     if pa.types.is_float64(array.type):
         return array
@@ -292,7 +301,7 @@ def _as_float(path: Path, name: str, array: pa.Array, rows_before: int) -> pa.Ar
 def _require_columns(path: Path, fmt: str, columns: Sequence[str] | None) -> None:
     if columns is None:
         return
-    names = pq.read_schema(path).names if fmt == "parquet" else _csv_header(path)
+    names = _parquet_file(path).schema_arrow.names if fmt == "parquet" else _csv_header(path)
     missing = [c for c in columns if c not in names]
     if missing:
         raise DataError(f"{path}: missing column(s) {', '.join(map(repr, missing))}; the file has {names}")
@@ -301,7 +310,7 @@ def _require_columns(path: Path, fmt: str, columns: Sequence[str] | None) -> Non
 def count_rows(path: Path) -> int | None:
     """Row count when it is cheap to know (Parquet metadata), else None."""
     if data_format(path) == "parquet" and path.is_file():
-        return int(pq.ParquetFile(path).metadata.num_rows)
+        return int(_parquet_file(path).metadata.num_rows)
     return None
 
 
@@ -631,3 +640,12 @@ def _parquet_options(source: RowSource) -> dict[str, bool]:
             c.logical_type.type == "DECIMAL" and c.physical_type in ("INT32", "INT64") for c in columns
         ),
     }
+
+
+def data_file_list(path: Path) -> list[Path]:
+    """The files a data path stands for (a file, a directory or a glob), in their fixed order
+    (:func:`policyc.files.data_files`); a path naming no usable file is a DataError."""
+    try:
+        return data_files(path)
+    except DataFilesError as error:
+        raise DataError(str(error)) from None

@@ -19,7 +19,7 @@ from pathlib import Path
 
 import numpy as np
 
-from policyc.files import file_sha256
+from policyc.files import DataFilesError, data_files, data_sha256
 from policyc.geometry.reach import (
     ReachabilityError,
     margin_tolerance,
@@ -395,13 +395,22 @@ def features_are_distinct(policy: Policy, context: CheckContext) -> Iterator[Dia
 
 
 def _data_file_is_present_and_pinned(
-    context: CheckContext, relative: str, pin: str | None, where: tuple[str, ...], what: str
+    context: CheckContext,
+    relative: str,
+    pin: str | None,
+    where: tuple[str, ...],
+    what: str,
+    many_files: bool = False,
 ) -> Iterator[Diagnostic]:
-    """``what``-data-missing / -unpinned / -hash-mismatch for a data file stated at ``where`` (data, sha256)."""
+    """``what``-data-missing / -unpinned / -hash-mismatch for a data file stated at ``where`` (data, sha256);
+    with ``many_files``, a directory or glob of data files too (``policyc.files.data_files``)."""
     path = context.resolve(relative)
     try:
-        digest = file_sha256(path) if path.is_file() else None
+        files = data_files(path) if many_files else ([path] if path.is_file() else [])
+        digest = data_sha256(files) if files else None
         problem = "does not exist or is not a regular file"
+    except DataFilesError as error:  # a directory or glob without usable data files
+        digest, problem = None, f"is unusable: {error}"
     except OSError as exc:  # a name too long for the file system, no permission, ...
         digest, problem = None, f"cannot be read: {exc.strerror}"
     if digest is None:
@@ -438,7 +447,7 @@ def training_data_is_present_and_pinned(policy: Policy, context: CheckContext) -
         return
     training = policy.evidence.training
     yield from _data_file_is_present_and_pinned(
-        context, training.data, training.sha256, ("evidence", "training"), "training"
+        context, training.data, training.sha256, ("evidence", "training"), "training", many_files=True
     )
 
 

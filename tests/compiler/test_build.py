@@ -286,7 +286,7 @@ def test_training_data_changed_between_check_and_fit_is_refused(monkeypatch: pyt
     # (the file was replaced mid-compile), the rule must not claim the pinned data.
     import policyc.evidence.gaussian
 
-    monkeypatch.setattr(policyc.evidence.gaussian, "file_sha256", lambda path: "0" * 64)
+    monkeypatch.setattr(policyc.evidence.gaussian, "data_sha256", lambda files: "0" * 64)
     with pytest.raises(CompileError) as caught:
         compile_policy(DEMOS / "packhouse" / "policy.yaml")
     assert caught.value.codes == ["training-data-hash-mismatch"]
