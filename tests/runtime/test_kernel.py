@@ -15,7 +15,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.stats import multivariate_normal
 
-from policyc.runtime import Rule, kernel
+from policyc.runtime import InputError, Rule, kernel
 
 FORMS = {"full": 0.0, "tied": 1.0, "diagonal": 2.0}
 
@@ -125,3 +125,38 @@ def test_far_rows_never_give_nan_posteriors(covariance: str) -> None:
     assert explanation.valid.all()
     assert np.isfinite(explanation.posteriors).all()
     np.testing.assert_allclose(explanation.posteriors.sum(axis=1), 1.0, rtol=1e-12)
+
+
+@pytest.mark.parametrize("threads", [2, 3])
+def test_threads_split_whole_chunks_and_give_the_same_bits(threads: int) -> None:
+    rule = random_rule(13, "full")
+    X = sample(rule, 14, 5 * kernel.CHUNK_ROWS + 17)
+    np.testing.assert_array_equal(rule.decide(X, threads=threads), rule.decide(X, threads=1))
+
+
+def test_threads_must_be_positive() -> None:
+    rule = random_rule(13, "full")
+    with pytest.raises(InputError, match="threads must be a positive number"):
+        rule.decide(np.zeros((3, len(rule.features))), threads=0)
+
+
+@pytest.mark.parametrize("covariance", FORMS)
+def test_float32_agrees_with_float64_to_its_precision(covariance: str) -> None:
+    rule = random_rule(17, covariance)
+    single = rule.astype(np.float32)
+    X = sample(rule, 18, 4000)
+    explanation = rule.explain(X)
+    posteriors = single.posteriors(X)
+    assert single.dtype == np.float32 and posteriors.dtype == np.float32
+    valid = explanation.valid
+    np.testing.assert_allclose(posteriors[valid], explanation.posteriors[valid], atol=1e-5)
+    assert np.isnan(posteriors[~valid]).all()
+    # decisions differ only where the float64 risks of the two best actions are within float32 rounding
+    near_tie = np.where(valid, explanation.margin, np.inf) <= 1e-5 * np.abs(rule.params["loss"]).max()
+    assert ((single.decide(X) != explanation.action) & ~near_tie).sum() == 0
+
+
+@pytest.mark.parametrize("dtype", ["float16", "int64", np.complex128, "no-such-type", None])
+def test_only_float32_and_float64_kernels_exist(dtype: object) -> None:
+    with pytest.raises(InputError, match="dtype must be float32 or float64"):
+        random_rule(13, "full").astype(dtype)  # type: ignore[arg-type]
