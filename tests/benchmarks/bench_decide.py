@@ -145,9 +145,8 @@ def against(
     """
     with threadpool_limits(1):
         mismatches = int((rule.decide(X, threads=1) != rule.explain(X).action).sum())
-        print(
-            f"{rule.manifest['evidence']['covariance']}, n={X.shape[0]}: decide vs full computation, {mismatches} differ"
-        )
+        shape = f"{rule.manifest['evidence']['covariance']}, n={X.shape[0]}"
+        print(f"{shape}: decide vs the full computation, {mismatches} decisions differ")
         return paired(lambda: rule.decide(X, threads=1), lambda: reference(X), rounds)
 
 
