@@ -25,7 +25,9 @@ import pytest
 from click.testing import CliRunner, Result
 from helpers import DEMOS, PACKHOUSE, two_class_text
 
+from policyc.batch import decide_file
 from policyc.cli import main
+from policyc.errors import DataError
 from policyc.runtime import load_rule
 
 INCOMING = DEMOS / "packhouse" / "incoming.csv"
@@ -404,3 +406,12 @@ def test_the_summary_still_counts_every_action(packhouse: Path, tmp_path: Path) 
     rule = load_rule(packhouse)
     assert result.exit_code == 0
     assert all(name in result.output for name in rule.actions)
+
+
+def test_an_invalid_row_in_a_later_batch_is_named_by_its_row_in_the_file(tmp_path: Path) -> None:
+    rule = load_rule(two_class_rule(tmp_path, invalid_input="error"))
+    data, out = tmp_path / "in.csv", tmp_path / "out.csv"
+    data.write_text("ll_c0,ll_c1\n-1,-2\n-1,-2\n-1,-2\n-1,NA\n", encoding="utf-8")
+    with pytest.raises(DataError, match=r"row\(s\) 4 \(1-based\).*row 4: 'll_c1'"):
+        decide_file(rule, data, out, batch_rows=2)
+    assert not out.exists()

@@ -373,7 +373,7 @@ def invalid_rows_message(
     rows = np.flatnonzero(~valid)
     shown = ", ".join(str(row + first_row) for row in rows[:10])
     more = f" and {rows.size - 10} more" if rows.size > 10 else ""
-    numbering = "0-based" if first_row == 0 else f"{first_row}-based"
+    numbering = "0-based" if first_row == 0 else "1-based"  # a batch of a file starts at its own row number
     where = []
     if prepared is not None and features:
         for row in rows[:10]:
