@@ -57,9 +57,14 @@ MAX_NESTING = 32  # a policy nests four or five levels; the limit keeps composin
 MAX_NODES = 20_000  # keys, values and list items: a 100-class, 100-action loss matrix fits; parsing stays ~0.2 s
 MAX_INTEGER = 1 << 53  # every integer up to 2**53 is exact as a float, so a number never changes silently
 
-# What YAML allows in a stream (YAML 1.1 §5.1, as PyYAML's reader checks it); anything else is refused by us,
+# What YAML allows in a stream (YAML 1.1 §5.1, as PyYAML's reader checks it), less the characters that are
+# invisible in review yet change what a reader sees: NEL and the Unicode line and paragraph separators (line
+# breaks to YAML 1.1 and libyaml, not to editors, so positions would disagree) and the bidirectional embedding,
+# override and isolate controls (they reorder text on screen, CVE-2021-42574). Anything else is refused by us,
 # with a position, before the parser sees it.
-_NOT_PRINTABLE = re.compile("[^\x09\x0a\x0d\x20-\x7e\x85\xa0-\ud7ff\ue000-\ufffd\U00010000-\U0010ffff]")
+_NOT_PRINTABLE = re.compile(
+    "[^\x09\x0a\x0d\x20-\x7e\xa0-\u2027\u202f-\u2065\u206a-\ud7ff\ue000-\ufffd\U00010000-\U0010ffff]"
+)
 
 
 class _PythonEventParser(Reader, Scanner, Parser):  # type: ignore[misc]  # PyYAML ships no types

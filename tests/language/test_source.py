@@ -151,7 +151,24 @@ def test_fifty_thousand_keys_are_refused_quickly() -> None:
     assert refusal(text).code == "too-many-nodes"
 
 
-@pytest.mark.parametrize("character", ["\x00", "\x01", "\x08", "\x1b", "\x7f", "\x9b", "\ufffe", "\ud800"])
+@pytest.mark.parametrize(
+    "character",
+    [
+        "\x00",
+        "\x01",
+        "\x08",
+        "\x1b",
+        "\x7f",
+        "\x85",
+        "\x9b",
+        "\u2028",
+        "\u2029",
+        "\u202e",
+        "\u2067",
+        "\ufffe",
+        "\ud800",
+    ],
+)
 def test_control_characters_are_refused_where_they_stand(character: str) -> None:
     # These ended in PyYAML's unlocated ReaderError.
     diagnostic = refusal(f"policy: p\ndescription: a{character}b\n")
@@ -162,6 +179,10 @@ def test_control_characters_are_refused_where_they_stand(character: str) -> None
 def test_tabs_line_breaks_and_printable_unicode_are_text() -> None:
     document = parse_source('policy: p\r\ndescription: "caf\u00e9\\t\u4e2d \U0001f34e"\n')
     assert document.data["description"] == "caf\u00e9\t\u4e2d \U0001f34e"
+    # right-to-left names need no bidirectional controls, so refusing those costs them nothing
+    assert parse_source("policy: p\ndescription: \u0645\u0631\u062d\u0628\u0627\n").data["description"] == (
+        "\u0645\u0631\u062d\u0628\u0627"
+    )
 
 
 @pytest.mark.parametrize(
