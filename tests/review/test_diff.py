@@ -478,3 +478,39 @@ def test_report_goes_to_a_file_with_dash_o(claims_pair: Path) -> None:
     code, out, err = run("diff", "claims-r1.yaml", "claims-r2.yaml", "--format", "markdown", "-o", "report.md")
     assert code == 0 and out == "" and "report -> report.md" in err
     assert (claims_pair / "report.md").read_text(encoding="utf-8").startswith("## policyc diff: claims-routing r1")
+
+
+def test_a_diff_between_revisions_with_limits_says_when_a_price_moves(tmp_path: Path) -> None:
+    r6 = ROOT / "policies-demo" / "packhouse" / "policy-r6.yaml"
+    for name in ("train.csv", "reference.csv"):
+        shutil.copy(r6.parent / name, tmp_path / name)
+    tighter = tmp_path / "policy-r7.yaml"
+    tighter.write_text(
+        r6.read_text(encoding="utf-8")
+        .replace("revision: 6", "revision: 7")
+        .replace("hold_for_inspector: 0.05", "hold_for_inspector: 0.03"),
+        encoding="utf-8",
+    )
+    old, new = load_rule_or_policy(r6), load_rule_or_policy(tighter)
+    changes = {c.what: c for c in semantic_changes(old, new)}
+    price = changes["limit max_share[hold_for_inspector] price"]
+    assert price.change == "changed" and float(price.new) > float(price.old) >= 0.0  # a tighter cap costs more
+    assert changes["limit max_share[hold_for_inspector]"].new == "0.03"
+    assert price.new_location is not None and price.new_location.startswith(str(tighter))
+    # the loss entries compared are the stated ones: the limits' adjustments are not reported as loss edits
+    assert not any(what.startswith("loss[") for what in changes)
+    against_r4 = {c.what for c in semantic_changes(load_rule_or_policy(r6.parent / "policy-r4.yaml"), old)}
+    assert not any(what.startswith("loss[") for what in against_r4)
+    assert "limit min_recall[defect] price" in against_r4
+
+
+def test_data_diff_charges_a_limited_rule_by_its_stated_matrix() -> None:
+    """r4 is r6 without limits (same losses and fit): on r6's reference rows the expected-risk difference
+    new - old is exactly the price of r6's limits, computed by the compiler on the same rows."""
+    folder = ROOT / "policies-demo" / "packhouse"
+    old, new = load_rule_or_policy(folder / "policy-r4.yaml"), load_rule_or_policy(folder / "policy-r6.yaml")
+    report = data_diff(old.rule, new.rule, folder / "reference.csv")
+    assert report.expected_risk is not None
+    before, after, rows = report.expected_risk
+    assert rows == 8000
+    assert after - before == pytest.approx(new.rule.manifest["limits"]["price"], rel=1e-9)

@@ -245,3 +245,45 @@ def test_deferrals_are_counted_by_reason(hand: tuple[Path, Path], tmp_path: Path
         CliRunner().invoke(main, ["evaluate", str(policy), str(data), "--label", "truth", "--format", "json"]).stdout
     )
     assert report["deferred_by_reason"] == {"min-risk": 2, "invalid": 2}
+
+
+R6 = Path(__file__).resolve().parents[2] / "policies-demo" / "packhouse" / "policy-r6.yaml"
+HOLDOUT = R6.parent / "holdout.csv"
+
+
+def test_limits_on_hold_out_data_match_an_independent_count() -> None:
+    """Each limit's hold-out rate from the rule's own decisions, its interval against scipy's beta quantiles
+    (Clopper & Pearson 1934, from memory: exact binomial interval), and the risk by the STATED matrix."""
+    loaded = load_rule_or_policy(R6)
+    rule = loaded.rule
+    result = evaluate(loaded, HOLDOUT, "grade", confidence=0.9, resamples=200)
+    with HOLDOUT.open(newline="", encoding="utf-8") as handle:
+        rows = list(csv.DictReader(handle))
+    X = np.array([[float(r[f]) for f in rule.features] for r in rows])
+    labels = np.array([rule.classes.index(r["grade"]) for r in rows])
+    decided = rule.decide(X)
+    cap, recall = result.limits
+    bench = rule.actions.index("hold_for_inspector")
+    assert (cap.rows, cap.count) == (len(rows), int(np.sum(decided == bench)))
+    defects = decided[labels == rule.classes.index("defect")]
+    caught = int(np.isin(defects, [rule.actions.index("juice"), bench]).sum())
+    assert (recall.rows, recall.count) == (defects.size, caught)
+    x, n = cap.count, cap.rows
+    assert cap.low == pytest.approx(scipy.stats.beta.ppf(0.05, x, n - x + 1))
+    assert cap.high == pytest.approx(scipy.stats.beta.ppf(0.95, x + 1, n - x))
+    assert cap.holds == (x / n <= 0.05) and cap.clearly_broken == (cap.low > 0.05)
+    stated = np.array([[rule.manifest["limits"]["stated_loss"][a][c] for c in rule.classes] for a in rule.actions])
+    assert not np.array_equal(stated, rule.params["loss"])
+    assert result.risk.estimate == pytest.approx(stated[decided, labels].mean())
+
+
+def test_evaluate_report_lists_the_limits(tmp_path: Path) -> None:
+    result = CliRunner().invoke(main, ["evaluate", str(R6), str(HOLDOUT), "--label", "grade", "--format", "json"])
+    assert result.exit_code == 0, result.output
+    limits = json.loads(result.stdout)["limits"]
+    assert [(c["kind"], c["subject"]) for c in limits] == [
+        ("max_share", "hold_for_inspector"),
+        ("min_recall", "defect"),
+    ]
+    text = CliRunner().invoke(main, ["evaluate", str(R6), str(HOLDOUT), "--label", "grade"]).stdout
+    assert "operating limits on this data" in text and "at most 5.00% get hold_for_inspector" in text

@@ -7,11 +7,13 @@ has four parts:
 ``semantic``
     Settings that differ, ``what: old -> new``: classes, actions and features
     added, removed or reordered; priors; loss entries (always on the loss
-    scale, a stated gain negated); the reject action and cost; invalid_input;
+    scale, a stated gain negated; as stated, before any operating limits); the reject action and cost; invalid_input;
     loss_unit; evidence settings (kind, covariance, shrinkage, columns, trained
     priors, calibration, the sha256 of the training data actually fitted) and,
     for gaussian evidence, a digest of the fitted class means and
-    covariances. Between two policy files every entry carries
+    covariances; operating limits: each limit's share, listed actions,
+    multiplier, reference rate and price, and the price of all together (so
+    a diff between revisions says when a price moves). Between two policy files every entry carries
     ``file:line:col`` in both files (the value's position; for an entry
     present on one side only, the other side has none). Between rules, or a
     rule and a policy, the manifests and arrays are compared and entries of a
@@ -32,9 +34,11 @@ has four parts:
 ``data`` (with ``--data``)
     Both rules decide every row (in batches). Flip matrix (old action x new
     action counts) and flip rate; each rule's reject share; the expected risk of
-    each rule's decisions under the NEW rule's model, mean R_new(a_old(x)|x) and
-    mean R_new(a_new(x)|x), over rows valid for the new rule (the new decisions
-    minimise it by construction, so new - old <= 0); with ``--label`` the
+    each rule's decisions under the NEW rule's model and stated loss matrix,
+    mean R_new(a_old(x)|x) and mean R_new(a_new(x)|x), over rows valid for the
+    new rule (without operating limits the new decisions minimise it by
+    construction, so new - old <= 0; with limits, new - old is what they cost
+    on these rows); with ``--label`` the
     empirical risk of each rule's decisions by the NEW policy's loss matrix and
     the difference new - old with a paired percentile bootstrap interval.
 

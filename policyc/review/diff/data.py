@@ -22,6 +22,7 @@ from policyc.review.shared.bootstrap import (
     categorical_mean_interval,
 )
 from policyc.review.shared.labels import label_codes
+from policyc.review.shared.losses import stated_loss, stated_risks
 from policyc.review.shared.reports import REPORT_CONFIG
 from policyc.runtime import Rule
 
@@ -181,9 +182,11 @@ class _DataTally:
         valid = after.valid
         if (mapped >= 0).all():
             rows = np.flatnonzero(valid)
-            # mean R_new(a|x) over rows valid for the new rule, a = the old and the new decision
-            self.risk_old += float(after.risks[rows, mapped[rows]].sum())
-            self.risk_new += float(after.risks[rows, after.action[rows]].sum())
+            # mean R_new(a|x) over rows valid for the new rule, a = the old and the new decision; by the new
+            # policy's stated matrix (a rule with operating limits decides by L' but costs L)
+            risks = stated_risks(self.new, after.posteriors[rows])
+            self.risk_old += float(risks[np.arange(rows.size), mapped[rows]].sum())
+            self.risk_new += float(risks[np.arange(rows.size), after.action[rows]].sum())
             self.risk_rows += rows.size
             if codes is not None:
                 k = len(self.new.classes)
@@ -248,7 +251,7 @@ def _finish(tally: _DataTally, data: Path, label: str | None, confidence: float,
         # mean R_new(a|x) = Σ_rows R_new(a(x)|x) / rows, for the old and the new decisions
         expected = (tally.risk_old / tally.risk_rows, tally.risk_new / tally.risk_rows, tally.risk_rows)
     if label is not None and not unmatched:
-        loss = np.asarray(new.params["loss"])
+        loss = stated_loss(new)
         # per row: loss_new[a_new, y] - loss_new[a_old, y], by category (a_old mapped, a_new, y)
         values = loss[None, :, :] - loss[:, None, :]
         difference = categorical_mean_interval(tally.cells, values, confidence, resamples, seed)

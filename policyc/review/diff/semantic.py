@@ -7,11 +7,11 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
-import numpy as np
 from pydantic.dataclasses import dataclass as report
 
 from policyc.review.shared.gaussians import moments_digest
 from policyc.review.shared.loading import LoadedRule
+from policyc.review.shared.losses import stated_loss
 from policyc.review.shared.reports import REPORT_CONFIG
 from policyc.runtime import Rule
 
@@ -66,7 +66,7 @@ def _facts(rule: Rule) -> dict[str, _Fact]:
     for name in rule.classes:
         facts[f"priors[{name}]"] = _Fact(manifest["priors"][name], ("priors", name))
     facts["priors (source)"] = _Fact(manifest.get("priors_source"), ("priors",))
-    loss = np.asarray(rule.params["loss"])
+    loss = stated_loss(rule)  # as stated; what the limits add shows as their multipliers below
     for row, action in enumerate(plain_actions(rule)):
         for column, name in enumerate(rule.classes):
             facts[f"loss[{action}][{name}]"] = _Fact(float(loss[row, column]), ("loss", action, name))
@@ -79,6 +79,25 @@ def _facts(rule: Rule) -> dict[str, _Fact]:
     facts["evidence.training.sha256"] = _Fact(manifest.get("training_sha256"), ("evidence", "training", "sha256"))
     if rule.evidence == "gaussian":  # other kinds' arrays follow from the settings listed above
         facts["evidence fit (class means and covariances, digest)"] = _Fact(moments_digest(rule), ("evidence",))
+    return facts | _limit_facts(manifest.get("limits"))
+
+
+def _limit_facts(record: dict[str, Any] | None) -> dict[str, _Fact]:
+    """Operating limits: the stated ones, and what compile solved (multiplier, reference rate, price)."""
+    if record is None:
+        return {}
+    facts = {
+        "limits.confidence": _Fact(record["confidence"], ("limits", "confidence")),
+        "limits.data sha256": _Fact(record["data_sha256"], ("limits", "data")),
+    }
+    for figures in record["limits"]:
+        name, path = f"{figures['kind']}[{figures['subject']}]", ("limits", figures["kind"], figures["subject"])
+        facts[f"limit {name}"] = _Fact(figures["share"], path if figures["kind"] == "max_share" else (*path, "share"))
+        if figures["kind"] == "min_recall":
+            facts[f"limit {name} actions"] = _Fact(figures["actions"], (*path, "actions"))
+        for key in ("multiplier", "rate", "price"):
+            facts[f"limit {name} {key}"] = _Fact(figures[key], path)
+    facts["limits price (all together)"] = _Fact(record["price"], ("limits",))
     return facts
 
 

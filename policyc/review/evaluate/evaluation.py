@@ -4,7 +4,8 @@ Everything is accumulated batch by batch, so memory stays bounded whatever the
 file size; the bootstrap interval of the risk works on the confusion counts
 (:mod:`policyc.review.shared.bootstrap`).
 
-Definitions (``loss`` is the rule's matrix, reject row last, in its loss_unit):
+Definitions (``loss`` is the rule's stated matrix, reject row last, in its loss_unit; a rule compiled with
+operating limits decides by the adjusted matrix L' but is charged by the stated one):
 
 * empirical risk: mean over rows of loss[action, true class], reject cost included;
 * an accepted (not deferred) decision is an *error* when its loss exceeds the
@@ -19,6 +20,10 @@ Definitions (``loss`` is the rule's matrix, reject row last, in its loss_unit):
   that risk is at most c, else it is deferred at cost c. The accepted sets are
   nested, so as c rises the reject rate falls and the error rate E rises
   (Chow 1970; Fukunaga 1990, p. 78);
+* the risk-reject curve sweeps the reject cost against the rule's own action rows (L' for a rule with limits);
+* operating limits (rules compiled with ``limits:``): each limit's rate on the data, all rows for a
+  ``max_share`` and the class's rows for a ``min_recall``, with a two-sided Clopper–Pearson interval at the
+  report's confidence, and whether the rate is within the limit;
 * calibration (posterior evidence only): the rule's posteriors, i.e. the
   upstream probabilities corrected to the deployment priors, against the
   labels. The upstream probabilities were calibrated under the upstream
@@ -44,7 +49,9 @@ JSON shape (``policyc evaluate --format json``; keys sorted, floats rounded to
                                               "accepted_error_rate", "own"}]},
       "calibration": null | {"binning", "bins", "ece_warning_above", "warning": bool,
                              "classes": [{"class", "ece", "bins": [{"low", "high", "count",
-                                                                     "mean_predicted", "observed"}]}]}
+                                                                     "mean_predicted", "observed"}]}]},
+      "limits": [{"kind", "subject", "actions", "share", "rows", "count", "rate", "low", "high",
+                  "confidence", "holds", "clearly_broken", "method"}]
     }
 """
 
@@ -70,6 +77,7 @@ from policyc.review.shared.bootstrap import (
 )
 from policyc.review.shared.labels import label_codes
 from policyc.review.shared.loading import LoadedRule, RuleIdentity, identity
+from policyc.review.shared.losses import stated_loss
 from policyc.review.shared.reports import REPORT_CONFIG
 from policyc.runtime import Rule
 
@@ -85,10 +93,12 @@ __all__ = [
     "Curve",
     "CurvePoint",
     "Evaluation",
+    "LimitCheck",
     "ReliabilityBin",
     "error_cells",
     "evaluate",
     "label_codes",
+    "limit_checks",
 ]
 
 CURVE_POINTS = 41
@@ -193,6 +203,65 @@ class Curve:
 
 
 @dataclass(frozen=True, config=REPORT_CONFIG)
+class LimitCheck:
+    """One operating limit of the rule on the labelled data: its rate, a two-sided Clopper–Pearson interval
+    at the report's confidence, and whether the rate is within the limit."""
+
+    kind: str
+    subject: str
+    actions: tuple[str, ...]
+    share: float
+    rows: int  # rows the limit is judged on: all rows (max_share), the rows of the class (min_recall)
+    count: int  # rows receiving the capped action / class rows receiving a listed action
+    rate: float | None
+    low: float | None
+    high: float | None
+    confidence: float
+    holds: bool | None  # the rate is within the limit
+    clearly_broken: bool | None  # the whole interval lies beyond the limit
+    method: str = "Clopper-Pearson (exact binomial), two-sided"
+
+
+def limit_checks(rule: Rule, confusion: np.ndarray, confidence: float) -> tuple[LimitCheck, ...]:
+    """Each limit in the rule's manifest checked on the confusion counts (K, A) of labelled data."""
+    from scipy import stats
+
+    record = rule.manifest.get("limits")
+    checks = []
+    for figures in record["limits"] if record is not None else ():
+        counted = np.isin(rule.actions, figures["actions"])
+        judged = confusion if figures["kind"] == "max_share" else confusion[[rule.classes.index(figures["subject"])]]
+        rows, count = int(judged.sum()), int(judged[:, counted].sum())
+        tail = (1.0 - confidence) / 2.0
+        rate = low = high = None
+        holds = broken = None
+        if rows:
+            rate = count / rows
+            # Clopper–Pearson: low = Beta⁻¹(α/2; x, n − x + 1), high = Beta⁻¹(1 − α/2; x + 1, n − x)
+            low = float(stats.beta.ppf(tail, count, rows - count + 1)) if count > 0 else 0.0
+            high = float(stats.beta.ppf(1.0 - tail, count + 1, rows - count)) if count < rows else 1.0
+            holds = rate <= figures["share"] if figures["kind"] == "max_share" else rate >= figures["share"]
+            broken = low > figures["share"] if figures["kind"] == "max_share" else high < figures["share"]
+        checks.append(
+            LimitCheck(
+                figures["kind"],
+                figures["subject"],
+                tuple(figures["actions"]),
+                figures["share"],
+                rows,
+                count,
+                rate,
+                low,
+                high,
+                confidence,
+                holds,
+                broken,
+            )
+        )
+    return tuple(checks)
+
+
+@dataclass(frozen=True, config=REPORT_CONFIG)
 class Evaluation:
     """Everything ``policyc evaluate`` reports (see the module docstring for definitions); its JSON is this
     object (schemas/evaluation-report.schema.json)."""
@@ -208,6 +277,7 @@ class Evaluation:
     curve: Annotated[tuple[CurvePoint, ...], Field(exclude=True)]
     reach_value: Annotated[float, Field(exclude=True)]
     calibration: CalibrationReport | None
+    limits: tuple[LimitCheck, ...] = ()
     error_definition: str = ERROR_DEFINITION
 
     @property
@@ -216,7 +286,8 @@ class Evaluation:
 
     @property
     def loss(self) -> np.ndarray:
-        return np.asarray(self.rule.params["loss"])
+        """The stated matrix (a rule with operating limits decides by L' but costs L)."""
+        return stated_loss(self.rule)
 
     @computed_field  # type: ignore[prop-decorator]
     @property
@@ -439,8 +510,8 @@ def evaluate(
     rows = int(confusion.sum())
     if rows == 0:
         raise DataError(f"{data}: the file has no rows")
-    # empirical risk = (1/n) Σ_rows λ(action, true class): confusion counts times loss, bootstrapped
-    risk = categorical_mean_interval(confusion, loss.T, confidence, resamples, seed)
+    # empirical risk = (1/n) Σ_rows λ(action, true class): confusion counts times the stated loss, bootstrapped
+    risk = categorical_mean_interval(confusion, stated_loss(rule).T, confidence, resamples, seed)
     return Evaluation(
         loaded,
         str(data),
@@ -452,4 +523,5 @@ def evaluate(
         curve.points(rows, own),
         value,
         calibration.report(rule.classes) if calibration is not None else None,
+        limit_checks(rule, confusion, confidence),
     )

@@ -35,7 +35,7 @@ def _headline(evaluation: Evaluation) -> list[str]:
     return [
         f"risk (mean loss per row): {number(risk.estimate)}{_unit(evaluation)}, {risk.confidence:.0%} CI "
         f"[{number(risk.low)}, {number(risk.high)}] (percentile bootstrap, {risk.resamples} resamples, "
-        f"seed {risk.seed}; loss matrix of the rule, reject cost included)",
+        f"seed {risk.seed}; the rule's stated loss matrix, reject cost included)",
         f"error rate: {share(evaluation.error_rate)} of all rows, {share(evaluation.accepted_error_rate)} "
         f"of accepted rows ({ERROR_DEFINITION})",
         f"reject rate: {share(evaluation.reject_rate)}"
@@ -116,6 +116,28 @@ def _calibration_lines(calibration: CalibrationReport, table: Table) -> list[str
     return lines
 
 
+LIMITS_HEADER = ["limit", "rows", "rate", "interval", "holds"]
+
+
+def _limit_rows(evaluation: Evaluation) -> list[list[str]]:
+    rows = []
+    for check in evaluation.limits:
+        if check.kind == "max_share":
+            stated = f"at most {share(check.share)} get {check.subject}"
+        else:
+            stated = f"at least {share(check.share)} of {check.subject} get {' or '.join(check.actions)}"
+        verdict = "n/a (no rows)"
+        if check.holds is not None:
+            verdict = "yes" if check.holds else "NO" if check.clearly_broken else "no, within sampling error"
+        rows.append([stated, str(check.rows), share(check.rate), f"[{share(check.low)}, {share(check.high)}]", verdict])
+    return rows
+
+
+def _limits_intro(evaluation: Evaluation) -> str:
+    level = evaluation.limits[0].confidence
+    return f"operating limits on this data ({level:.0%} two-sided Clopper-Pearson intervals)"
+
+
 def _text(evaluation: Evaluation) -> str:
     rule = evaluation.rule
     lines = [
@@ -133,6 +155,8 @@ def _text(evaluation: Evaluation) -> str:
         _curve_intro(evaluation) + f"; reject cost and risk in{_unit(evaluation) or ' loss units'}:",
         text_table(CURVE_HEADER, _curve_rows(evaluation)),
     ]
+    if evaluation.limits:
+        lines += ["", _limits_intro(evaluation) + ":", text_table(LIMITS_HEADER, _limit_rows(evaluation))]
     if evaluation.calibration is not None:
         lines += ["", *_calibration_lines(evaluation.calibration, text_table)]
     return "\n".join(lines)
@@ -161,6 +185,9 @@ def _markdown(evaluation: Evaluation) -> str:
         "",
         markdown_table(CURVE_HEADER, _curve_rows(evaluation)),
     ]
+    if evaluation.limits:
+        lines += ["", "### Operating limits", "", _limits_intro(evaluation) + ".", ""]
+        lines += [markdown_table(LIMITS_HEADER, _limit_rows(evaluation))]
     if evaluation.calibration is not None:
         lines += ["", "### Calibration", ""]
         for line in _calibration_lines(evaluation.calibration, markdown_table):
