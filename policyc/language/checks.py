@@ -12,6 +12,7 @@ rejecting when min_a R(a|x) > d.
 
 from __future__ import annotations
 
+import csv
 from collections import Counter
 from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass
@@ -28,7 +29,7 @@ from policyc.geometry.reach import (
     wins_somewhere,
 )
 from policyc.language.diagnostics import Diagnostic, PolicyCheckError, PolicyError, Severity
-from policyc.language.model import GaussianEvidence, Policy, PosteriorEvidence, build_policy
+from policyc.language.model import GaussianEvidence, Policy, PosteriorEvidence, build_policy, did_you_mean
 from policyc.language.source import SourceDocument, load_source
 
 __all__ = [
@@ -451,6 +452,75 @@ def training_data_is_present_and_pinned(policy: Policy, context: CheckContext) -
     )
 
 
+def training_file_has_the_columns(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
+    """The training file's header names the label and every feature (read without fitting anything)."""
+    if not isinstance(policy.evidence, GaussianEvidence):
+        return
+    training = policy.evidence.training
+    wanted: dict[tuple[str | int, ...], str] = {
+        ("evidence", "features", i): f for i, f in enumerate(policy.evidence.features)
+    }
+    wanted[("evidence", "training", "label")] = training.label
+    yield from _file_has_columns(context, training.data, wanted, ("evidence", "training", "data"), "training")
+
+
+def calibration_file_has_the_columns(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
+    """The calibration file's header names the label and every probability column (read without fitting)."""
+    evidence = policy.evidence
+    if not isinstance(evidence, PosteriorEvidence) or evidence.calibrate is None:
+        return
+    wanted: dict[tuple[str | int, ...], str] = {("evidence", "columns", c): n for c, n in evidence.columns.items()}
+    wanted[("evidence", "calibrate", "label")] = evidence.calibrate.label
+    yield from _file_has_columns(
+        context, evidence.calibrate.data, wanted, ("evidence", "calibrate", "data"), "calibration"
+    )
+
+
+def _file_has_columns(
+    context: CheckContext,
+    relative: str,
+    wanted: dict[tuple[str | int, ...], str],
+    where: tuple[str, ...],
+    what: str,
+) -> Iterator[Diagnostic]:
+    """``what``-column-missing at the key naming each column the file's header lacks."""
+    path = context.resolve(relative)
+    try:
+        if not path.is_file():
+            return  # reported by the rule that the file is present
+        names = column_names(path)
+    except OSError:
+        return  # a name the file system refuses: reported by the rule that the file is present
+    except ValueError as error:
+        yield _error(f"{what}-data-unusable", str(error), where)
+        return
+    listed = ", ".join(map(repr, names[:30])) + (f" and {len(names) - 30} more" if len(names) > 30 else "")
+    for key, column in wanted.items():
+        if column not in names:
+            suggestion = did_you_mean(column, names, "").removeprefix("; ")
+            yield _error(
+                f"{what}-column-missing",
+                f"{what} data {relative!r} has no column {column!r}{f' ({suggestion})' if suggestion else ''}; "
+                f"its columns are {listed}",
+                key,
+            )
+
+
+def column_names(path: Path) -> list[str]:
+    """The header of a CSV file (standard library) or the schema of a Parquet file; ValueError when unreadable."""
+    try:
+        if path.suffix.lower() in (".parquet", ".pq"):
+            import pyarrow.parquet as pq  # only for Parquet: a CSV header needs no pyarrow
+
+            return list(pq.read_schema(path).names)
+        with path.open(newline="", encoding="utf-8-sig") as handle:
+            return next(csv.reader(handle), [])
+    except (OSError, UnicodeDecodeError, csv.Error) as error:
+        raise ValueError(f"{path}: cannot read its header: {error}") from None
+    except Exception as error:  # pyarrow's errors, without importing pyarrow to name them
+        raise ValueError(f"{path}: cannot read its header: {error}") from None
+
+
 def evidence_columns_cover_classes(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
     evidence = policy.evidence
     if isinstance(evidence, GaussianEvidence):
@@ -757,6 +827,7 @@ RULES: tuple[Rule, ...] = (
     loss_matrix_is_oriented,
     features_are_distinct,
     training_data_is_present_and_pinned,
+    training_file_has_the_columns,
     evidence_columns_cover_classes,
     posterior_evidence_is_documented,
     limits_name_actions_and_classes,
@@ -768,6 +839,7 @@ RULES: tuple[Rule, ...] = (
     calibrate_replaces_trained_priors_and_record,
     regularisation_is_for_dirichlet,
     calibration_data_is_present_and_pinned,
+    calibration_file_has_the_columns,
     calibration_data_has_enough_rows,
 )
 

@@ -310,11 +310,13 @@ def _diagnostic_from_pydantic(error: Mapping[str, Any], data: Mapping[str, Any])
     return Diagnostic(code=code, severity=Severity.ERROR, message=message, path=path, hint=hint)
 
 
-def did_you_mean(name: str, known: Iterable[str]) -> str:
-    """``"; did you mean 'priors'?"`` for the closest known spellings, or a pointer to the schema."""
+def did_you_mean(
+    name: str, known: Iterable[str], otherwise: str = "; check its spelling against the policy schema"
+) -> str:
+    """``"; did you mean 'priors'?"`` for the closest known spellings, else ``otherwise``."""
     close = difflib.get_close_matches(name, sorted(set(known)), n=2, cutoff=0.6)
     if not close:
-        return "; check its spelling against the policy schema"
+        return otherwise
     return "; did you mean " + " or ".join(repr(c) for c in close) + "?"
 
 

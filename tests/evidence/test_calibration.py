@@ -83,7 +83,7 @@ def test_a_row_that_is_not_probabilities_is_refused_with_its_number(
 def test_a_missing_probability_column_is_refused(tmp_path: Path) -> None:
     path = write_case(tmp_path, mixed_rows())
     (tmp_path / "cal.csv").write_text("p_ok,y\n0.5,ok\n0.5,ok\n0.5,bad\n0.5,bad\n", encoding="utf-8")
-    assert compile_error_codes(path) == ["calibration-data-unusable"]
+    assert compile_error_codes(path) == ["calibration-column-missing"]  # check reads the header, before any fit
 
 
 def test_probabilities_that_rank_every_label_first_have_no_finite_temperature(tmp_path: Path) -> None:
