@@ -8,7 +8,7 @@ empty lines skipped), so record i here is row i there; :mod:`policyc.evidence.io
 from __future__ import annotations
 
 import re
-from collections.abc import Iterator
+from collections.abc import Generator, Iterator
 from dataclasses import dataclass
 from typing import BinaryIO
 
@@ -61,15 +61,36 @@ def _records(stream: BinaryIO, chunk_bytes: int) -> Iterator[tuple[bytes, bytes]
         chunk = stream.read(chunk_bytes)
         at_end = not chunk
         buffer += chunk
-        position = 0
-        while position < len(buffer):
-            match = _RECORD.match(buffer, position)
-            if match is None or (not at_end and match.end() == len(buffer) and match.group(1) in (b"", b"\r")):
-                break  # no whole record yet: it may go on (or "\r" become "\r\n") in the next chunk
-            yield buffer[position : match.start(1)], match.group(1)
-            position = match.end()
-        buffer = buffer[position:]
+        if b'"' not in buffer and buffer.count(b"\r") == buffer.count(b"\r\n"):
+            buffer = yield from _plain_lines(buffer, at_end)
+        else:
+            buffer = yield from _quoted_records(buffer, at_end)
         if len(buffer) > MAX_RECORD_BYTES:
             raise RecordError(f"a row longer than {MAX_RECORD_BYTES:,} bytes (an unbalanced quote?)")
     if buffer:
         raise RecordError("an unbalanced quote at the end of the file")
+
+
+def _plain_lines(buffer: bytes, at_end: bool) -> Generator[tuple[bytes, bytes], None, bytes]:
+    """The fast path for text without quotes or lone carriage returns, where a record is a line: yield the
+    complete lines and return what follows the last line end (yielded too at the end of the file)."""
+    lines = buffer.split(b"\n")
+    rest = lines.pop()
+    for line in lines:
+        yield (line[:-1], b"\r\n") if line.endswith(b"\r") else (line, b"\n")
+    if at_end and rest:
+        yield rest, b""
+        return b""
+    return rest
+
+
+def _quoted_records(buffer: bytes, at_end: bool) -> Generator[tuple[bytes, bytes], None, bytes]:
+    """Records cut by the record pattern; return the bytes after the last complete record."""
+    position = 0
+    while position < len(buffer):
+        match = _RECORD.match(buffer, position)
+        if match is None or (not at_end and match.end() == len(buffer) and match.group(1) in (b"", b"\r")):
+            break  # no whole record yet: it may go on (or "\r" become "\r\n") in the next chunk
+        yield buffer[position : match.start(1)], match.group(1)
+        position = match.end()
+    return buffer[position:]

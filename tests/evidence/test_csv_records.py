@@ -61,7 +61,8 @@ def test_an_unbalanced_quote_is_refused() -> None:
         list(split_records(io.BytesIO(b'a,b\n"open,1\n2,3\n')))
 
 
-def test_a_record_longer_than_the_cap_is_refused(monkeypatch: pytest.MonkeyPatch) -> None:
+@pytest.mark.parametrize("row", [b'"' + b"x" * 200 + b'"', b"x" * 200], ids=["quoted", "plain"])
+def test_a_record_longer_than_the_cap_is_refused(row: bytes, monkeypatch: pytest.MonkeyPatch) -> None:
     monkeypatch.setattr(_csv_records, "MAX_RECORD_BYTES", 64)
     with pytest.raises(RecordError, match="longer than"):
-        list(split_records(io.BytesIO(b'a\n"' + b"x" * 200 + b'"\n'), chunk_bytes=16))
+        list(split_records(io.BytesIO(b"a\n" + row + b"\n"), chunk_bytes=16))
