@@ -55,17 +55,26 @@ def connect(scheduler: str, workers: int | None = None) -> Iterator[Client]:
             yield client
         return
     count = workers if workers is not None else os.cpu_count() or 1
-    with (
-        LocalCluster(
-            n_workers=count,
+    with _local_cluster(count) as cluster, _client(cluster) as client:
+        yield client
+
+
+@contextmanager
+def _local_cluster(workers: int) -> Iterator[LocalCluster]:
+    try:
+        cluster = LocalCluster(
+            n_workers=workers,
             threads_per_worker=1,  # a task already overlaps reading and arithmetic on two threads (io.read_ahead)
             processes=True,
             host="127.0.0.1",
-            dashboard_address=None,
-        ) as cluster,
-        _client(cluster) as client,
-    ):
-        yield client
+            # the scheduler always serves HTTP (None still means port 8787, and a warning when it is taken):
+            # any free port, on the loopback interface only
+            dashboard_address="127.0.0.1:0",
+        )
+    except (OSError, RuntimeError, TimeoutError) as exc:
+        raise ClusterError(f"cannot start a local Dask cluster of {workers} workers: {exc}") from None
+    with cluster:
+        yield cluster
 
 
 @contextmanager

@@ -40,7 +40,7 @@ from policyc.cluster import ClusterError, DaskPartitions, connect, decide_datafr
 def client() -> Iterator[distributed.Client]:
     with (
         distributed.LocalCluster(
-            n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1", dashboard_address=None
+            n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1", dashboard_address="127.0.0.1:0"
         ) as cluster,
         distributed.Client(cluster) as client,
     ):

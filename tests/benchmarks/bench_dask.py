@@ -176,7 +176,7 @@ def cluster_phase(workdir: Path, n_workers: int) -> dict[str, Any]:
     start = time.perf_counter()
     with (
         LocalCluster(
-            n_workers=n_workers, threads_per_worker=1, processes=True, host="127.0.0.1", dashboard_address=None
+            n_workers=n_workers, threads_per_worker=1, processes=True, host="127.0.0.1", dashboard_address="127.0.0.1:0"
         ) as cluster,
         Client(cluster) as client,
     ):
