@@ -415,3 +415,12 @@ def test_an_invalid_row_in_a_later_batch_is_named_by_its_row_in_the_file(tmp_pat
     with pytest.raises(DataError, match=r"row\(s\) 4 \(1-based\).*row 4: 'll_c1'"):
         decide_file(rule, data, out, batch_rows=2)
     assert not out.exists()
+
+
+def test_a_binary_file_is_refused_with_a_printable_message(packhouse: Path, tmp_path: Path) -> None:
+    data = tmp_path / "junk.csv"
+    data.write_bytes(bytes(range(256)) * 40)
+    result = run("decide", packhouse, data, "-o", tmp_path / "out.csv")
+    assert result.exit_code == 1 and str(data) in result.output and "Traceback" not in result.output
+    message = result.output.strip()
+    assert message.isprintable() and len(message) < 400, message

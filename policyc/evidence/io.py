@@ -213,12 +213,23 @@ def _explain_csv_error(path: Path, header: list[str], message: str) -> str:
         return _not_utf8_message(path, _column_named(header, match.group(1)))
     match = _CSV_CONVERSION.search(message)
     if match is None:
-        return f"{path}: {message.splitlines()[0]}"
+        return f"{path}: {_quoted_reason(message)}"
     column_index, _, value = match.groups()
     column = _column_named(header, column_index)
     row = _first_row_holding(path, column, value)
     where = f", row {row} (line {row + 1})" if row is not None else ""
     return f"{path}: column {column!r}{where}: {value!r} is not a number"
+
+
+_REASON_CHARS = 200
+
+
+def _quoted_reason(message: str) -> str:
+    """A reader's message fit for a terminal: its first line, control characters escaped, at most 200 characters
+    (pyarrow quotes the offending bytes, which in a binary file are anything)."""
+    line = message.splitlines()[0] if message else ""
+    shown = "".join(c if c.isprintable() else ascii(c)[1:-1] for c in line[:_REASON_CHARS])
+    return shown + (" ..." if len(line) > _REASON_CHARS else "")
 
 
 def _column_named(header: list[str], index: str) -> str:
@@ -254,7 +265,7 @@ def _csv_header(path: Path) -> list[str]:
     try:
         first = pacsv.open_csv(path, read_options=pacsv.ReadOptions(block_size=1 << 16))
     except pa.ArrowInvalid as exc:
-        raise DataError(f"{path}: cannot read as CSV: {str(exc).splitlines()[0]}") from None
+        raise DataError(f"{path}: cannot read as CSV: {_quoted_reason(str(exc))}") from None
     return list(first.schema.names)
 
 
@@ -287,7 +298,7 @@ def _parquet_file(path: Path, pre_buffer: bool = False, buffer_size: int = 0) ->
     try:
         return pq.ParquetFile(path, pre_buffer=pre_buffer, buffer_size=buffer_size)
     except (pa.ArrowInvalid, OSError) as exc:
-        raise DataError(f"{path}: cannot read as Parquet: {str(exc).splitlines()[0]}") from None
+        raise DataError(f"{path}: cannot read as Parquet: {_quoted_reason(str(exc))}") from None
 
 
 def _as_float(path: Path, name: str, array: pa.Array, rows_before: int) -> pa.Array:
@@ -472,7 +483,7 @@ class RowSource:
             try:
                 self.schema = pq.read_schema(path)
             except (OSError, pa.ArrowException) as error:
-                raise DataError(f"{path}: cannot read as Parquet: {error}") from None
+                raise DataError(f"{path}: cannot read as Parquet: {_quoted_reason(str(error))}") from None
         else:
             self.schema = pa.schema([(name, pa.string()) for name in _csv_header(path)])
         self.names: list[str] = list(self.schema.names)
@@ -491,7 +502,7 @@ class RowSource:
         try:
             yield from self._parquet_rows() if self.format == "parquet" else self._csv_rows()
         except (OSError, pa.ArrowException) as error:
-            raise DataError(f"{self.path}: cannot read: {error}") from None
+            raise DataError(f"{self.path}: cannot read: {_quoted_reason(str(error))}") from None
 
     def csv_header(self) -> tuple[bytes, bytes]:
         """The CSV header record's bytes and line end (empty lines before it included)."""
