@@ -767,7 +767,7 @@ def plot_curve(rule_file: Path, data: Path, label: str, picture: Path, size: Fig
 
 @main.command(epilog=CAUTION)
 @click.argument("rule_file", metavar="RULE", type=click.Path(dir_okay=False, path_type=Path))
-@click.argument("data", type=click.Path(dir_okay=False, path_type=Path))
+@click.argument("data", type=click.Path(path_type=Path))
 @format_option("text", "yaml", "json")
 @REPORT_OUTPUT_OPTION
 @click.option(
@@ -779,7 +779,8 @@ def plot_curve(rule_file: Path, data: Path, label: str, picture: Path, size: Fig
 )
 @QUIET_OPTION
 def priors(rule_file: Path, data: Path, output_format: str, report_file: Path | None, confidence: float) -> None:
-    """Estimate the class mix of unlabelled DATA with RULE (EM, Saerens et al. 2002).
+    """Estimate the class mix of unlabelled DATA (a file, or a directory or glob of files) with RULE (EM,
+    Saerens et al. 2002).
 
     Compares it with the rule's priors and says whether the change test rejects "no change": if
     it does, the rule's decisions may no longer be the cheapest; review the priors before

@@ -16,6 +16,7 @@ from policyc.compiler import write_artefact
 from policyc.compiler.build import compile_policy
 from policyc.evidence.io import DataError
 from policyc.partitioned import plan_partitions
+from policyc.review.priors import estimate_priors
 from policyc.runtime import load_rule
 
 
@@ -75,3 +76,19 @@ def test_a_bad_file_in_a_directory_is_named_by_the_cli(wine_rule: tuple[Path, np
     assert result.exit_code == 1
     assert f"{tmp_path / 'in' / 'part-01.parquet'}: cannot read as Parquet" in result.output
     assert "Traceback" not in result.output
+
+
+def test_priors_over_a_directory_equal_priors_over_the_one_file(
+    wine_rule: tuple[Path, np.ndarray], tmp_path: Path
+) -> None:
+    rule_file, X = wine_rule
+    write_partitions(tmp_path / "whole", X, ["?"] * len(X), 1)
+    write_partitions(tmp_path / "parts", X, ["?"] * len(X), 5, ".csv")
+    rule = load_rule(rule_file)
+    whole = estimate_priors(rule, tmp_path / "whole" / "part-00.parquet")
+    parts = estimate_priors(rule, tmp_path / "parts")
+    # the same rows in the same order: EM performs the same operations (the contract asks 1e-9)
+    np.testing.assert_array_equal(parts.priors, whole.priors)
+    assert parts.iterations == whole.iterations
+    result = CliRunner().invoke(main, ["priors", str(rule_file), str(tmp_path / "parts"), "--format", "json"])
+    assert result.exit_code == 0, result.output

@@ -19,7 +19,7 @@ from pydantic.dataclasses import dataclass
 from scipy import stats
 
 from policyc.evidence.base import Progress
-from policyc.evidence.io import DataError, count_rows, read_feature_batches
+from policyc.evidence.io import DataError, count_rows, data_file_list, read_feature_batches
 from policyc.render import dumps
 from policyc.review.shared.reports import REPORT_CONFIG
 from policyc.runtime import Rule
@@ -153,14 +153,18 @@ def _wald_interval(ratios: np.ndarray, estimate: np.ndarray, confidence: float) 
 
 
 def posteriors_of_file(rule: Rule, data: Path, progress: Progress | None = None) -> np.ndarray:
-    """The rule's posteriors for every valid row of ``data``, read in batches. Memory: 8·K bytes per row."""
+    """The rule's posteriors for every valid row of ``data`` (a file, or a directory or glob of files, in
+    :func:`~policyc.evidence.io.data_file_list`'s order), read in batches. Memory: 8·K bytes per row."""
     parts = []
-    total = count_rows(data) if progress is not None else None
-    for batch in read_feature_batches(data, rule.features):
-        assessment = rule.assess(batch.features)
-        parts.append(assessment.posteriors[assessment.valid])
-        if progress is not None:
-            progress(batch.features.shape[0], total)
+    files = data_file_list(data)
+    counts = [count_rows(path) for path in files] if progress is not None else [None]
+    total = None if None in counts else sum(c for c in counts if c is not None)
+    for path in files:
+        for batch in read_feature_batches(path, rule.features):
+            assessment = rule.assess(batch.features)
+            parts.append(assessment.posteriors[assessment.valid])
+            if progress is not None:
+                progress(batch.features.shape[0], total)
     if not parts or sum(p.shape[0] for p in parts) == 0:
         raise DataError(f"{data}: no valid rows to estimate priors from")
     return np.vstack(parts)
