@@ -26,6 +26,7 @@ import pyarrow.parquet as pq
 from policyc.errors import DataError
 from policyc.evidence._csv_records import CsvRecords, RecordError, split_records
 from policyc.files import DataFilesError, atomic_path, data_files, same_file
+from policyc.language.hints import did_you_mean
 
 __all__ = [
     "DEFAULT_BATCH_ROWS",
@@ -315,7 +316,14 @@ def _require_columns(path: Path, fmt: str, columns: Sequence[str] | None) -> Non
     names = _parquet_file(path).schema_arrow.names if fmt == "parquet" else _csv_header(path)
     missing = [c for c in columns if c not in names]
     if missing:
-        raise DataError(f"{path}: missing column(s) {', '.join(map(repr, missing))}; the file has {names}")
+        named = ", ".join(f"{name!r}{_suggestion(name, names)}" for name in missing)
+        raise DataError(f"{path}: missing column(s) {named}; the file has {names}")
+
+
+def _suggestion(name: str, names: Sequence[str]) -> str:
+    """`` (did you mean 'grade'?)`` for a near spelling among the file's columns, else nothing."""
+    close = did_you_mean(name, names, "").removeprefix("; ")
+    return f" ({close})" if close else ""
 
 
 def count_rows(path: Path) -> int | None:

@@ -29,7 +29,8 @@ from policyc.geometry.reach import (
     wins_somewhere,
 )
 from policyc.language.diagnostics import Diagnostic, PolicyCheckError, PolicyError, Severity
-from policyc.language.model import GaussianEvidence, Policy, PosteriorEvidence, build_policy, did_you_mean
+from policyc.language.hints import did_you_mean
+from policyc.language.model import GaussianEvidence, Policy, PosteriorEvidence, build_policy
 from policyc.language.source import SourceDocument, load_source
 
 __all__ = [

@@ -7,7 +7,10 @@ and the README's to the same text.
 
 from __future__ import annotations
 
-__all__ = ["HINTS"]
+import difflib
+from collections.abc import Iterable
+
+__all__ = ["HINTS", "did_you_mean"]
 
 HINTS: dict[str, str] = {
     "policy-unreadable": "check the path",
@@ -104,3 +107,13 @@ HINTS: dict[str, str] = {
     "training-value-not-finite": "clean the data",
     "training-data-unusable": "the message names the column and row",
 }
+
+
+def did_you_mean(
+    name: str, known: Iterable[str], otherwise: str = "; check its spelling against the policy schema"
+) -> str:
+    """``"; did you mean 'priors'?"`` for the closest known spellings, else ``otherwise``."""
+    close = difflib.get_close_matches(name, sorted(set(known)), n=2, cutoff=0.6)
+    if not close:
+        return otherwise
+    return "; did you mean " + " or ".join(repr(c) for c in close) + "?"

@@ -8,9 +8,8 @@ of :mod:`policyc.language.checks`, which reports every disagreement at once.
 
 from __future__ import annotations
 
-import difflib
 import functools
-from collections.abc import Iterable, Mapping
+from collections.abc import Mapping
 from typing import Annotated, Any, Literal
 
 import numpy as np
@@ -24,6 +23,7 @@ from pydantic import (
 )
 
 from policyc.language.diagnostics import Diagnostic, PolicySchemaError, Severity
+from policyc.language.hints import did_you_mean
 from policyc.language.source import SourceDocument
 
 __all__ = [
@@ -308,16 +308,6 @@ def _diagnostic_from_pydantic(error: Mapping[str, Any], data: Mapping[str, Any])
     if hint is not None:
         message = f"expected text here, not the number {error['input']}"
     return Diagnostic(code=code, severity=Severity.ERROR, message=message, path=path, hint=hint)
-
-
-def did_you_mean(
-    name: str, known: Iterable[str], otherwise: str = "; check its spelling against the policy schema"
-) -> str:
-    """``"; did you mean 'priors'?"`` for the closest known spellings, else ``otherwise``."""
-    close = difflib.get_close_matches(name, sorted(set(known)), n=2, cutoff=0.6)
-    if not close:
-        return otherwise
-    return "; did you mean " + " or ".join(repr(c) for c in close) + "?"
 
 
 @functools.cache

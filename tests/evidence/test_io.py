@@ -286,3 +286,10 @@ def test_table_writer_keeps_the_old_file_when_the_writing_fails(name: str, tmp_p
         raise RuntimeError("upstream failed")
     assert target.read_bytes() == before
     assert [p.name for p in tmp_path.iterdir()] == [name]
+
+
+def test_a_mistyped_column_gets_a_did_you_mean(tmp_path: Path) -> None:
+    data = tmp_path / "data.csv"
+    data.write_text("firmness_n,grade\n1.0,ok\n", encoding="utf-8")
+    with pytest.raises(DataError, match=r"missing column\(s\) 'firmnes' \(did you mean 'firmness_n'\?\), 'zzz';"):
+        list(read_feature_batches(data, ["firmnes", "zzz"]))
