@@ -312,19 +312,29 @@ def _contenders(loss: np.ndarray, row: int) -> np.ndarray:
     return loss[keep]
 
 
+LOSS_SPREAD_LIMIT = 1e6
+"""Largest max|λ| / min nonzero |λ| (reject cost included) whose reachability is analysed: beyond it risk
+differences of the smallest losses fall below the tie tolerance (1e-9 of the largest) and the solver's own
+tolerances, so actions would be reported unreachable that are not (common practice, no source)."""
+
+
 def every_action_is_reachable(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
     loss = _complete_matrix(policy)
     if loss is None:
         return
+    magnitudes = np.abs(loss[loss != 0.0])
     try:
+        if magnitudes.size and magnitudes.max() > LOSS_SPREAD_LIMIT * magnitudes.min():  # no division: no overflow
+            raise ReachabilityError(
+                f"the losses span {magnitudes.min():g} to {magnitudes.max():g}, more than {LOSS_SPREAD_LIMIT:g} apart"
+            )
         findings = list(_unreachable_rows(policy, loss))
     except ReachabilityError as exc:
-        yield _error(
+        yield _warning(
             "loss-not-analysable",
             f"cannot tell which actions are ever chosen: {exc}",
             (policy.matrix_key,),
-            "losses of very different orders of magnitude defeat the analysis; state them in a unit that "
-            "keeps them within a few orders of magnitude",
+            "state the losses (and the reject cost) in a unit that keeps them within six orders of magnitude",
         )
         return
     yield from findings

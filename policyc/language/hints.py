@@ -65,7 +65,7 @@ HINTS: dict[str, str] = {
     "dominated-action": "it is never better than another action",
     "unreachable-action": "no posterior makes it the cheapest",
     "reject-never-taken": "a cost below V (printed)",
-    "loss-not-analysable": "keep the losses within a few orders of magnitude",
+    "loss-not-analysable": "keep the losses within six orders of magnitude",
     "reject-always-taken": "every input would be deferred",
     "loss-may-be-transposed": "rows are actions, columns classes",
     "duplicate-feature": "unique features",
