@@ -8,9 +8,18 @@ from pathlib import Path
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 
 from policyc.errors import DataError
-from policyc.evidence.io import DEFAULT_BATCH_ROWS, RowSource, count_rows, data_format, write_rows
+from policyc.evidence.io import (
+    DEFAULT_BATCH_ROWS,
+    RowBatch,
+    RowSource,
+    count_rows,
+    data_format,
+    write_behind,
+    write_rows,
+)
 from policyc.runtime import REASONS, Explanation, Rule, kernel
 
 __all__ = ["DecisionCounts", "assess_batch", "decide_file", "deferral_text", "deferrals", "explain_columns"]
@@ -21,10 +30,17 @@ def assess_batch(rule: Rule, features: np.ndarray, data: Path, first_row: int, w
     is a DataError naming its row in the file (rows counted from 1, the header not counted) and the
     columns holding a missing or non-finite value there."""
     assessment = rule.assess(features)
-    if rule.invalid_input == "error" and not assessment.valid.all():
-        message = kernel.invalid_rows_message(assessment.valid, first_row, prepared=features, features=rule.features)
-        raise DataError(f"{data}: {whose}{message}")
+    refuse_invalid_rows(rule, assessment.valid, features, data, first_row, whose)
     return assessment
+
+
+def refuse_invalid_rows(
+    rule: Rule, valid: np.ndarray, features: np.ndarray, data: Path, first_row: int, whose: str = ""
+) -> None:
+    """Under ``invalid_input: error``, a DataError naming the first invalid row and its bad columns."""
+    if rule.invalid_input == "error" and not valid.all():
+        message = kernel.invalid_rows_message(valid, first_row, prepared=features, features=rule.features)
+        raise DataError(f"{data}: {whose}{message}")
 
 
 def deferrals(rule: Rule, assessment: Explanation) -> dict[str, int]:
@@ -57,10 +73,15 @@ class DecisionCounts:
     def rows(self) -> int:
         return sum(self.actions.values())
 
-    def add(self, rule: Rule, assessment: Explanation) -> None:
-        for index, count in enumerate(np.bincount(assessment.action, minlength=len(rule.actions)).tolist()):
+    def add(self, rule: Rule, action: np.ndarray, valid: np.ndarray) -> None:
+        """Count a batch's actions (indices into ``rule.actions``) and deferrals; a row's reason is ``invalid``
+        where it is not valid, else ``min-risk`` (``kernel.reasons``)."""
+        for index, count in enumerate(np.bincount(action, minlength=len(rule.actions)).tolist()):
             self.actions[rule.actions[index]] += count
-        add_counts(self.deferred, deferrals(rule, assessment))
+        if rule.reject_action is not None:
+            deferred = action == len(rule.actions) - 1
+            invalid = int((deferred & ~valid).sum())
+            add_counts(self.deferred, {"min-risk": int(deferred.sum()) - invalid, "invalid": invalid})
 
     def summary(self) -> str:
         """One line: rows per action with shares, then deferrals by reason."""
@@ -100,11 +121,12 @@ def decide_file(
     counts = DecisionCounts(dict.fromkeys(rule.actions, 0), dict.fromkeys(REASONS, 0), rule.reject_action)
     total_rows = count_rows(data)
     try:
-        with write_rows(output, source, added) as write:
+        # three threads: the source reads the next batch, this one decides, the writer writes the last one
+        with write_rows(output, source, added) as write, write_behind(write) as write_later:
             for rows in source.batches():
-                assessment = assess_batch(rule, rows.features, data, rows.first_row)
-                write(rows, _decision_columns(rule, assessment, added))
-                counts.add(rule, assessment)
+                columns, action, valid = _decide_batch(rule, rows, data, explain, added)
+                write_later(rows, columns)
+                counts.add(rule, action, valid)
                 if progress is not None:
                     progress(rows.num_rows, total_rows)
             if counts.rows == 0:
@@ -123,6 +145,19 @@ def _added_schema(rule: Rule, explain: bool) -> pa.Schema:
         fields += [pa.field("runner_up", pa.string()), pa.field("margin", pa.float64())]
         fields += [pa.field("reason", pa.string())]
     return pa.schema(fields)
+
+
+def _decide_batch(
+    rule: Rule, rows: RowBatch, data: Path, explain: bool, schema: pa.Schema
+) -> tuple[pa.RecordBatch, np.ndarray, np.ndarray]:
+    """The added columns, action indices and validity of a batch; posteriors and risks only for ``explain``."""
+    if explain:
+        assessment = assess_batch(rule, rows.features, data, rows.first_row)
+        return _decision_columns(rule, assessment, schema), assessment.action, assessment.valid
+    action, valid = rule.decide_valid(rows.features)
+    refuse_invalid_rows(rule, valid, rows.features, data, rows.first_row)
+    names = pc.take(pa.array(rule.actions, pa.string()), pa.array(action))
+    return pa.RecordBatch.from_arrays([names], schema=schema), action, valid
 
 
 def _decision_columns(rule: Rule, assessment: Explanation, schema: pa.Schema) -> pa.RecordBatch:

@@ -275,17 +275,38 @@ def test_a_non_number_in_a_feature_column_is_an_error_naming_row_and_column(pack
 # --- deferrals are counted by reason ------------------------------------------------------------------------------
 
 
-def test_summary_counts_deferrals_by_reason(tmp_path: Path) -> None:
+@pytest.mark.parametrize("explain", [True, False])
+def test_summary_counts_deferrals_by_reason(tmp_path: Path, explain: bool) -> None:
     rule_file = two_class_rule(tmp_path, reject_cost=0.3, invalid_input="reject")
     data, out = tmp_path / "in.csv", tmp_path / "out.csv"
     # equal log-likelihoods: posterior 0.5, min risk 0.5 > 0.3, deferred by risk; NA: invalid
     data.write_text("ll_c0,ll_c1\n-1,-9\n-1,-1\n-2,-2\nNA,-1\n", encoding="utf-8")
-    result = run("decide", rule_file, data, "-o", out, "--explain")
+    result = run("decide", rule_file, data, "-o", out, *(["--explain"] if explain else []))
     assert result.exit_code == 0, result.output
     assert "deferred to reject: 3 (min-risk 2, invalid 1)" in result.output
     rows = read_rows(out)
-    assert [r["reason"] for r in rows] == ["min-risk"] * 3 + ["invalid"]
     assert [r["action"] for r in rows] == ["a0", "reject", "reject", "reject"]
+    if explain:
+        assert [r["reason"] for r in rows] == ["min-risk"] * 3 + ["invalid"]
+
+
+@pytest.mark.parametrize("name", ["out.csv", "out.parquet"])
+def test_deciding_without_explanations_gives_the_explained_actions_and_counts(
+    packhouse: Path, tmp_path: Path, name: str
+) -> None:
+    """The decide-only path (no posteriors) against the full computation, over many small batches in flight."""
+    rule = load_rule(packhouse)
+    plain, explained = tmp_path / name, tmp_path / f"explained-{name}"
+    plain_counts = decide_file(rule, INCOMING, plain, batch_rows=7)
+    explained_counts = decide_file(rule, INCOMING, explained, explain=True, batch_rows=7)
+    assert plain_counts == explained_counts and plain_counts.rows == len(read_rows(INCOMING))
+    actions = [
+        pq.read_table(path).column("action").to_pylist()
+        if name.endswith(".parquet")
+        else [r["action"] for r in read_rows(path)]
+        for path in (plain, explained)
+    ]
+    assert actions[0] == actions[1]
 
 
 # --- unreadable input, unwritable output, interruption --------------------------------------------------------------

@@ -42,6 +42,7 @@ __all__ = [
     "read_ahead",
     "read_feature_batches",
     "read_table_batches",
+    "write_behind",
     "write_rows",
 ]
 
@@ -150,6 +151,8 @@ def read_table_batches(
 
 _END = object()
 T = TypeVar("T")
+A = TypeVar("A")
+B = TypeVar("B")
 
 
 def read_ahead(batches: Iterator[T], depth: int = 1) -> Iterator[T]:
@@ -191,6 +194,41 @@ def read_ahead(batches: Iterator[T], depth: int = 1) -> Iterator[T]:
                 ready.get_nowait()
             except queue.Empty:
                 worker.join(timeout=0.1)
+
+
+@contextmanager
+def write_behind(write: Callable[[A, B], None], depth: int = 1) -> Iterator[Callable[[A, B], None]]:
+    """Hand ``write``'s calls to a worker thread so the caller goes on with the next batch.
+
+    At most ``depth`` calls wait in the queue (bounded memory) and they run in order. The first error in
+    ``write`` is raised in the caller, at its next call or on leaving; later calls are then dropped. Leaving
+    waits for the queued calls, so whatever encloses this block (an atomic output) sees every write done.
+    """
+    pending: queue.Queue[tuple[A, B] | None] = queue.Queue(maxsize=depth)
+    failures: list[BaseException] = []
+
+    def consume() -> None:
+        while (item := pending.get()) is not None:
+            if not failures:
+                try:
+                    write(*item)
+                except BaseException as error:  # handed to the caller, who raises it
+                    failures.append(error)
+
+    def hand_over(first: A, second: B) -> None:
+        if failures:
+            raise failures[0]
+        pending.put((first, second))
+
+    worker = threading.Thread(target=consume, name="policyc-write-behind", daemon=True)
+    worker.start()
+    try:
+        yield hand_over
+    finally:
+        pending.put(None)
+        worker.join()
+    if failures:
+        raise failures[0]
 
 
 def _csv_batches(

@@ -212,6 +212,13 @@ class Rule:
             raise InputError(kernel.invalid_rows_message(valid, prepared=prepared, features=self.features))
         return actions
 
+    def decide_valid(self, X: object) -> tuple[np.ndarray, np.ndarray]:
+        """The action index and validity per row, each shape (n,), without posteriors or risks; invalid rows
+        never raise (they get the reject action, or index ``len(actions) - 1``). Input as for :meth:`decide`."""
+        with _input_refusals():
+            prepared = inputs.feature_matrix(X, self.features)
+        return kernel.decide_matrix(prepared, self.evidence, self._plan, len(self.actions) - 1)
+
     def decide_names(self, X: object) -> np.ndarray:
         return np.asarray(self.actions, dtype=object)[self.decide(X)]
 

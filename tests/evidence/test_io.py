@@ -16,7 +16,7 @@ import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 import pytest
 
-from policyc.evidence.io import DataError, TableWriter, read_feature_batches
+from policyc.evidence.io import DataError, TableWriter, read_feature_batches, write_behind
 
 FEATURES = ["alpha", "beta", "gamma", "delta"]
 
@@ -293,3 +293,25 @@ def test_a_mistyped_column_gets_a_did_you_mean(tmp_path: Path) -> None:
     data.write_text("firmness_n,grade\n1.0,ok\n", encoding="utf-8")
     with pytest.raises(DataError, match=r"missing column\(s\) 'firmnes' \(did you mean 'firmness_n'\?\), 'zzz';"):
         list(read_feature_batches(data, ["firmnes", "zzz"]))
+
+
+def test_write_behind_writes_in_order_and_raises_the_writers_error_in_the_caller() -> None:
+    written: list[tuple[int, str]] = []
+
+    def write(number: int, text: str) -> None:
+        if number == 3:
+            raise OSError("disk full")
+        written.append((number, text))
+
+    with pytest.raises(OSError, match="disk full"), write_behind(write) as write_later:
+        for number in range(10):
+            write_later(number, str(number))
+    assert written == [(0, "0"), (1, "1"), (2, "2")]
+
+
+def test_write_behind_finishes_every_write_before_leaving() -> None:
+    written: list[int] = []
+    with write_behind(lambda number, _: written.append(number), depth=2) as write_later:
+        for number in range(50):
+            write_later(number, None)
+    assert written == list(range(50))
