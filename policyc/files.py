@@ -125,13 +125,45 @@ def write_bytes_atomically(target: Path, data: bytes) -> None:
         os.fsync(stream.fileno())
 
 
+_DIGESTS: dict[tuple[int, ...], str] = {}
+"""Digests already computed in this process, by file identity (see :func:`file_sha256`); the oldest go first."""
+_DIGESTS_KEPT = 64
+_DIGESTS_LOCK = threading.Lock()
+
+
 def file_sha256(path: Path) -> str:
-    """sha256 of a file's bytes, read in 1 MiB chunks."""
+    """sha256 of a file's bytes, read in 1 MiB chunks; hashed once per process while the file is unchanged.
+
+    A compile hashes its data for the check and again after the fit has read it (to see that the pinned file
+    is what was read): the second time costs a ``stat``. A file counts as unchanged while its device, inode,
+    size, modification and status-change times (nanoseconds) are (common practice, no source); rewriting a
+    file updates its status-change time, so a change made even within the same second shows.
+    """
+    before = _identity(path)
+    with _DIGESTS_LOCK:
+        known = _DIGESTS.get(before)
+    if known is not None:
+        return known
+    text = _read_sha256(path)
+    if _identity(path) == before:  # a file written to while it was read is hashed again next time
+        with _DIGESTS_LOCK:
+            _DIGESTS[before] = text
+            while len(_DIGESTS) > _DIGESTS_KEPT:
+                del _DIGESTS[next(iter(_DIGESTS))]
+    return text
+
+
+def _read_sha256(path: Path) -> str:
     digest = hashlib.sha256()
     with path.open("rb") as handle:
         while chunk := handle.read(_CHUNK):
             digest.update(chunk)
     return digest.hexdigest()
+
+
+def _identity(path: Path) -> tuple[int, ...]:
+    status = path.stat()
+    return (status.st_dev, status.st_ino, status.st_size, status.st_mtime_ns, status.st_ctime_ns)
 
 
 class DataFilesError(ValueError):

@@ -386,11 +386,12 @@ class _DigestInBackground:
     fit reads the same files.
 
     hashlib releases the GIL while it hashes, so the digest costs little wall time beside the decoding.
-    If the fit fails first, the thread finishes on its own; it holds no lock and its outcome is dropped.
+    If the fit fails first, the thread finishes on its own (it holds no lock while hashing) and its outcome is dropped.
     """
 
     def __init__(self, files: list[Path]) -> None:
         self._outcome: list[str | Exception] = []
+        self._files = files
         self._thread = threading.Thread(target=self._run, args=(files,), name="policyc-sha256", daemon=True)
         self._thread.start()
 
@@ -401,8 +402,10 @@ class _DigestInBackground:
             self._outcome.append(exc)
 
     def result(self) -> str:
+        """The digest of the files as they are now, after the fit read them: the background digest when
+        they are unchanged since (a ``stat`` each, :func:`policyc.files.file_sha256`), else a new one."""
         self._thread.join()
         outcome = self._outcome[0]
         if isinstance(outcome, Exception):
             raise outcome
-        return outcome
+        return data_sha256(self._files)

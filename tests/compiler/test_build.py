@@ -5,6 +5,7 @@ from __future__ import annotations
 import csv
 import hashlib
 import os
+import shutil
 import subprocess
 import sys
 from pathlib import Path
@@ -291,3 +292,25 @@ def test_training_data_changed_between_check_and_fit_is_refused(monkeypatch: pyt
         compile_policy(DEMOS / "packhouse" / "policy.yaml")
     assert caught.value.codes == ["training-data-hash-mismatch"]
     assert "changed while compiling" in str(caught.value)
+
+
+def test_a_compile_reads_the_training_file_once_for_its_digest(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    # the check hashes the pinned file, the fit asks again after reading it: the second answer costs a stat
+    shutil.copy(DEMOS / "packhouse" / "policy.yaml", tmp_path / "policy.yaml")
+    shutil.copy(DEMOS / "packhouse" / "train.csv", tmp_path / "train.csv")
+    monkeypatch.setattr(policyc.files, "_DIGESTS", {})
+    read: list[Path] = []
+    real = policyc.files._read_sha256
+    monkeypatch.setattr(policyc.files, "_read_sha256", lambda path: read.append(path) or real(path))
+    compile_policy(tmp_path / "policy.yaml")
+    assert read.count(tmp_path / "train.csv") == 1
+
+
+def test_a_file_rewritten_in_place_with_its_old_size_and_time_is_hashed_again(tmp_path: Path) -> None:
+    data = tmp_path / "train.csv"
+    data.write_bytes(b"x,label\n1,a\n")
+    assert policyc.files.file_sha256(data) == hashlib.sha256(b"x,label\n1,a\n").hexdigest()
+    status = data.stat()
+    data.write_bytes(b"x,label\n2,a\n")
+    os.utime(data, ns=(status.st_atime_ns, status.st_mtime_ns))  # same size and modification time
+    assert policyc.files.file_sha256(data) == hashlib.sha256(b"x,label\n2,a\n").hexdigest()
