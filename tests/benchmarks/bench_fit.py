@@ -179,6 +179,7 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--profile", action="store_true", help="print a cProfile summary of each task")
     parser.add_argument("--max-rss-mb", type=float, default=300.0)
     parser.add_argument("--min-ratio", type=float, default=0.5)
+    parser.add_argument("--json", action="store_true", help="print the figures as one JSON object")
     parser.add_argument("--task", choices=["read", "fit"], help=argparse.SUPPRESS)
     args = parser.parse_args(argv)
     if args.task is not None:
@@ -206,11 +207,27 @@ def main(argv: list[str] | None = None) -> int:
     return report(reads, fit, fit_batch, args)
 
 
-def report(reads: list[dict[str, float]], fit: dict[str, float], fit_batch: int, args: argparse.Namespace) -> int:
+def figures(reads: list[dict[str, float]], fit: dict[str, float]) -> dict[str, float]:
+    """Rows/s of the faster read and of the fit, their ratio, and the fit's peak RSS."""
     read = max(reads, key=lambda task: task["rows"] / task["seconds"])
     read_rate = read["rows"] / read["seconds"]
     fit_rate = fit["rows"] / fit["seconds"]
-    ratio = fit_rate / read_rate
+    # ratio = fit rows/s / read rows/s
+    return {
+        "read_rows_per_s": read_rate,
+        "fit_rows_per_s": fit_rate,
+        "ratio": fit_rate / read_rate,
+        "fit_peak_rss_mb": fit["peak_rss_mb"],
+        "rows": fit["rows"],
+    }
+
+
+def report(reads: list[dict[str, float]], fit: dict[str, float], fit_batch: int, args: argparse.Namespace) -> int:
+    if args.json:
+        print(json.dumps(figures(reads, fit)))
+        return 0
+    read = max(reads, key=lambda task: task["rows"] / task["seconds"])
+    ratio = figures(reads, fit)["ratio"]
     print(f"rows                {int(fit['rows']):>14,}")
     lines = [(f"pyarrow read {int(task['batch_rows']):>6}", task) for task in reads]
     lines.append((f"policyc fit  {fit_batch:>6}", fit))
