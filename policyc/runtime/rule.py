@@ -217,7 +217,7 @@ class Rule:
         never raise (they get the reject action, or index ``len(actions) - 1``). Input as for :meth:`decide`."""
         with _input_refusals():
             prepared = inputs.feature_matrix(X, self.features)
-        return kernel.decide_matrix(prepared, self.evidence, self._plan, len(self.actions) - 1)
+        return _decide_in_parallel(prepared, self.evidence, self._plan, len(self.actions) - 1, None)
 
     def decide_names(self, X: object) -> np.ndarray:
         return np.asarray(self.actions, dtype=object)[self.decide(X)]
