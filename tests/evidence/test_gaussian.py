@@ -683,3 +683,104 @@ def test_progress_counts_each_row_once_per_named_pass(tmp_path: Path) -> None:
     fit_evidence(policy, None, record)
     rows = len((PACKHOUSE.parent / "train.csv").read_text(encoding="utf-8").splitlines()) - 1
     assert seen == {"pass 1 of 2": rows, "pass 2 of 2": rows}
+
+# --- boundaries of the fit: scale of the data, one feature, row counts, conditioning --------------------
+
+
+def fit_rows(rows_by_class: Sequence[np.ndarray], covariance: str, shrinkage: str | float) -> GaussianFit:
+    """Fit straight from per-class row arrays (one batch)."""
+    X = np.vstack(rows_by_class)
+    codes = np.repeat(np.arange(len(rows_by_class)), [len(rows) for rows in rows_by_class])
+    batches = [(X, codes)]
+    moments = moments_by_class(batches, len(rows_by_class), X.shape[1])
+    classes = [f"c{k}" for k in range(len(rows_by_class))]
+    return fit_covariances(
+        moments, classes, covariance, shrinkage, lambda means: fourth_moments_by_class(batches, means)
+    )
+
+
+@pytest.mark.parametrize("scale", [0.01, 1e-4, 100.0])
+def test_ledoit_wolf_intensity_is_scale_free_and_matches_scikit_learn(
+    wine: tuple[np.ndarray, np.ndarray], scale: float
+) -> None:
+    # sklearn.covariance.ledoit_wolf on features scaled by 0.01 (references.md LW-1): the intensity b²/d² does not
+    # depend on the unit, although d² and b̄² fall far below 1 on small-scale data.
+    from sklearn.covariance import ledoit_wolf
+
+    X, y = wine
+    fit = fit_rows([X[y == k] * scale for k in range(3)], "full", "auto")
+    for k in range(3):
+        _, reference = ledoit_wolf(X[y == k] * scale)
+        assert fit.intensities[k] == pytest.approx(reference, rel=1e-10)
+        assert fit.intensities[k] == pytest.approx(fit_wine(X, y, "full", "auto").intensities[k], rel=1e-10)
+
+
+def test_ledoit_wolf_intensity_of_one_feature_is_zero(wine: tuple[np.ndarray, np.ndarray]) -> None:
+    # One feature: S equals its own target m·I, so d² = 0 and nothing is shrunk; sklearn's ledoit_wolf agrees.
+    from sklearn.covariance import ledoit_wolf
+
+    X, y = wine
+    rows = [X[y == k][:, :1] * 0.01 for k in range(3)]
+    fit = fit_rows(rows, "full", "auto")
+    assert fit.intensities == (0.0, 0.0, 0.0)
+    assert [ledoit_wolf(r)[1] for r in rows] == [0.0, 0.0, 0.0]
+    np.testing.assert_allclose(fit.covariances[:, 0, 0], [r.var() for r in rows], rtol=1e-12)
+
+
+def test_ledoit_wolf_intensity_is_zero_for_rows_of_an_exactly_spherical_sample() -> None:
+    # The four points (±1, 0), (0, ±1) have S = ½ I exactly: d² = 0, so the intensity is 0 (no division by zero).
+    rows = np.array([[1.0, 0.0], [-1.0, 0.0], [0.0, 1.0], [0.0, -1.0]])
+    fit = fit_rows([rows, rows + 5.0], "full", "auto")
+    assert fit.intensities == (0.0, 0.0)
+    np.testing.assert_allclose(fit.covariances, [0.5 * np.eye(2)] * 2, rtol=1e-15)
+
+
+def test_ledoit_wolf_intensity_clips_at_one_when_the_noise_exceeds_the_spread() -> None:
+    # On these six heavy-tailed rows (found by a seeded search) b̄² ≥ d², so b² = min(b̄², d²) = d² and the
+    # intensity is exactly 1 (references.md LW-1); sklearn's ledoit_wolf says the same.
+    from sklearn.covariance import ledoit_wolf
+
+    rows = np.array([[-3, 1, 9], [5, -1, 0], [-2, 0, 0], [3, 0, -1], [-9, -9, 0], [0, 0, 7]], dtype=float)
+    fit = fit_rows([rows, rows * 2.0], "full", "auto")
+    assert fit.intensities == (1.0, 1.0)
+    assert ledoit_wolf(rows)[1] == 1.0
+    np.testing.assert_allclose(fit.covariances[0], np.trace(np.cov(rows.T, bias=True)) / 3 * np.eye(3), rtol=1e-14)
+
+
+@pytest.mark.parametrize(
+    ("covariance", "shrinkage", "needed"),
+    [("full", "none", 4), ("full", 0.5, 2), ("diagonal", "none", 2), ("tied", "none", 2)],
+)
+def test_row_count_boundary_per_covariance_structure(covariance: str, shrinkage: str | float, needed: int) -> None:
+    # A full ML covariance of d features needs d + 1 rows to be non-singular (d = 3 here); the others need 2.
+    rng = np.random.default_rng(31)
+    enough = [rng.normal(size=(needed, 3)), rng.normal(size=(8, 3))]
+    assert fit_rows(enough, covariance, shrinkage).counts == (needed, 8)
+    with pytest.raises(
+        gaussian_module.FitProblem, match=f"has {needed - 1} training rows.*needs at least {needed}"
+    ) as info:
+        fit_rows([enough[0][:-1], enough[1]], covariance, shrinkage)
+    assert info.value.code == "too-few-rows"
+
+
+@pytest.mark.parametrize(
+    ("ratio", "refused"), [(1e13, True), (1.5e12, True), (1e12, True), (9e11, False), (1e6, False)]
+)
+def test_an_ill_conditioned_covariance_is_refused_from_the_limit_up(ratio: float, refused: bool) -> None:
+    # Positive definite but with eigenvalue ratio ≥ CONDITION_LIMIT (1e12): float64 whitening would lose most digits.
+    eigenvalues = np.array([1.0, 1.0 / ratio])
+    rows = np.vstack([np.diag(np.sqrt(eigenvalues)), -np.diag(np.sqrt(eigenvalues))])  # S = diag(eigenvalues) / 2
+    if not refused:
+        fit_rows([rows, rows], "full", "none")
+        return
+    with pytest.raises(gaussian_module.FitProblem) as info:
+        fit_rows([rows, rows], "full", "none")
+    assert info.value.code == "singular-covariance"
+    assert f"eigenvalue ratio {ratio:.3g}" in info.value.message
+
+
+def test_a_zero_covariance_is_refused_with_an_infinite_ratio() -> None:
+    rows = np.ones((4, 2))
+    with pytest.raises(gaussian_module.FitProblem, match="eigenvalue ratio infinite") as info:
+        fit_rows([rows, rows + 1.0], "diagonal", "none")
+    assert info.value.code == "singular-covariance"

@@ -139,3 +139,147 @@ def test_rounded_priors_sum_to_one_exactly_in_decimals() -> None:
     rounded = rounded_priors(estimate)
     assert round(sum(rounded.values()), 10) == 1.0
     assert max(abs(rounded[c] - p) for c, p in zip(CLASSES, estimate.priors, strict=True)) < 2e-4
+
+
+# --- the estimate, its interval and the change statistic against independent computations -------------
+
+UNIFORM = np.full(3, 1 / 3)
+
+
+def _log_likelihood(posteriors: np.ndarray, rule_priors: np.ndarray, priors: np.ndarray) -> float:
+    # references.md SA-3: ℓ(π̃) = Σ_rows ln Σ_j (π̃_j / π_j) p_j(x)
+    return float(np.sum(np.log((posteriors / rule_priors) @ priors)))
+
+
+def _free_log_likelihood(posteriors: np.ndarray, rule_priors: np.ndarray, free: np.ndarray) -> float:
+    # ℓ in the K-1 free coordinates, the last prior being 1 - Σ free
+    return _log_likelihood(posteriors, rule_priors, np.append(free, 1.0 - free.sum()))
+
+
+def _numerical_standard_errors(posteriors: np.ndarray, rule_priors: np.ndarray, priors: np.ndarray) -> np.ndarray:
+    """Standard errors of all K priors from a central-difference Hessian of ℓ in the free coordinates."""
+    free, step = priors[:-1], 1e-4
+    size = free.size
+    hessian = np.empty((size, size))
+    for i in range(size):
+        for j in range(size):
+            shift_i, shift_j = step * np.eye(size)[i], step * np.eye(size)[j]
+            # ∂²ℓ/∂x_i∂x_j ≈ [ℓ(x+h_i+h_j) - ℓ(x+h_i-h_j) - ℓ(x-h_i+h_j) + ℓ(x-h_i-h_j)] / 4h²
+            hessian[i, j] = (
+                _free_log_likelihood(posteriors, rule_priors, free + shift_i + shift_j)
+                - _free_log_likelihood(posteriors, rule_priors, free + shift_i - shift_j)
+                - _free_log_likelihood(posteriors, rule_priors, free - shift_i + shift_j)
+                + _free_log_likelihood(posteriors, rule_priors, free - shift_i - shift_j)
+            ) / (4 * step**2)
+    covariance = np.linalg.inv(-hessian)  # inverse observed information
+    last = np.sum(covariance)  # Var(1 - Σ free) = 1ᵀ C 1
+    return np.sqrt(np.append(np.diag(covariance), last))
+
+
+def _maximum_likelihood(posteriors: np.ndarray, rule_priors: np.ndarray) -> np.ndarray:
+    """ℓ maximised by BFGS on softmax parameters with its analytic gradient, to a gradient of 1e-12 per row."""
+    ratios = posteriors / rule_priors
+    rows = ratios.shape[0]
+
+    def negative_mean(z: np.ndarray) -> tuple[float, np.ndarray]:
+        priors = special.softmax(z)
+        mixture = ratios @ priors
+        gradient_priors = -(ratios / mixture[:, None]).mean(axis=0)
+        # chain rule through the softmax: ∂π_j/∂z_i = π_j (δ_ij - π_i)
+        return -float(np.log(mixture).sum() / rows), priors * (gradient_priors - priors @ gradient_priors)
+
+    result = optimize.minimize(
+        negative_mean, np.zeros(ratios.shape[1]), jac=True, method="BFGS", options={"gtol": 1e-12}
+    )
+    return special.softmax(result.x)
+
+
+@pytest.mark.parametrize("truth", [(0.6, 0.3, 0.1), (0.25, 0.5, 0.25)])
+def test_estimate_matches_a_tightly_converged_maximum_likelihood(truth: tuple[float, ...]) -> None:
+    # references.md SA-3: the EM fixed point is the maximum-likelihood estimate; compared at 1e-8.
+    posteriors, _ = _exact_posteriors(np.array(truth), 3000, seed=21)
+    estimate = estimate_priors_from_posteriors(posteriors, UNIFORM, CLASSES, tolerance=1e-13)
+    assert estimate.converged and 1 < estimate.iterations < 10_000
+    np.testing.assert_allclose(estimate.priors, _maximum_likelihood(posteriors, UNIFORM), atol=1e-8)
+
+
+def test_default_tolerance_stops_within_1e_8_of_the_maximum_likelihood() -> None:
+    # Convergence is judged on the largest change of any prior: stopping on a smaller one would stop early.
+    posteriors, _ = _exact_posteriors(np.array([0.5, 0.1, 0.4]), 3000, seed=4)
+    estimate = estimate_priors_from_posteriors(posteriors, UNIFORM, CLASSES)
+    np.testing.assert_allclose(estimate.priors, _maximum_likelihood(posteriors, UNIFORM), atol=1e-8)
+
+
+def test_iterations_stop_at_max_iterations_without_convergence() -> None:
+    posteriors, _ = _exact_posteriors(np.array([0.6, 0.3, 0.1]), 2000, seed=6)
+    capped = estimate_priors_from_posteriors(posteriors, UNIFORM, CLASSES, max_iterations=3)
+    assert (capped.iterations, capped.converged) == (3, False)
+    # three EM steps from the rule priors (references.md SA-2: E-step correction, M-step mean), written out
+    priors = UNIFORM.copy()
+    for _ in range(3):
+        corrected = posteriors / UNIFORM * priors
+        priors = (corrected / corrected.sum(axis=1, keepdims=True)).mean(axis=0)
+    np.testing.assert_allclose(capped.priors, priors, rtol=1e-12)
+    full = estimate_priors_from_posteriors(posteriors, UNIFORM, CLASSES)
+    assert full.converged and full.iterations > 3
+
+
+@pytest.mark.parametrize(("truth", "rule_priors"), [((0.6, 0.3, 0.1), UNIFORM), ((1 / 3,) * 3, UNIFORM)])
+def test_change_statistic_and_p_value_follow_the_likelihood_ratio(truth, rule_priors) -> None:
+    # references.md SA-4: statistic 2[ℓ(π̂) - ℓ(π)], p-value from χ² on K - 1 = 2 degrees of freedom (scipy).
+    posteriors, _ = _exact_posteriors(np.array(truth), 2000, seed=9)
+    estimate = estimate_priors_from_posteriors(posteriors, rule_priors, CLASSES)
+    expected = 2 * (
+        _log_likelihood(posteriors, rule_priors, estimate.priors)
+        - _log_likelihood(posteriors, rule_priors, rule_priors)
+    )
+    assert estimate.change_statistic == pytest.approx(expected, rel=1e-9, abs=1e-9)
+    assert estimate.p_value == pytest.approx(stats.chi2.sf(expected, 2), rel=1e-9)
+
+
+def test_unchanged_mix_gives_a_statistic_below_one_and_a_large_p_value() -> None:
+    # With the rule's own mix the statistic is small (χ²(2) has mean 2); here it is below 1 and must not be rounded up.
+    posteriors, _ = _exact_posteriors(UNIFORM, 2000, seed=9)
+    estimate = estimate_priors_from_posteriors(posteriors, UNIFORM, CLASSES)
+    expected = 2 * (
+        _log_likelihood(posteriors, UNIFORM, estimate.priors) - _log_likelihood(posteriors, UNIFORM, UNIFORM)
+    )
+    assert 0.0 < expected < 1.0
+    assert estimate.change_statistic == pytest.approx(expected, rel=1e-9)
+
+
+def _two_class_posteriors(rows: int, seed: int) -> np.ndarray:
+    posteriors, _ = _exact_posteriors(np.array([0.7, 0.3, 0.0]), rows, seed)
+    return posteriors[:, :2] / posteriors[:, :2].sum(axis=1, keepdims=True)
+
+
+def test_two_classes_interval_and_p_value_in_closed_form() -> None:
+    # Two classes: ℓ''(π) = -Σ (a_1 - a_2)² / s², se = 1/√(-ℓ''), interval π̂ ± z se with z = Φ⁻¹(0.975) (Wald);
+    # change statistic against χ² on 1 degree of freedom (references.md SA-4).
+    posteriors = _two_class_posteriors(3000, seed=12)
+    rule_priors = np.array([0.5, 0.5])
+    estimate = estimate_priors_from_posteriors(posteriors, rule_priors, CLASSES[:2])
+    ratios = posteriors / rule_priors
+    mixture = ratios @ estimate.priors
+    se = 1.0 / np.sqrt(np.sum(((ratios[:, 0] - ratios[:, 1]) / mixture) ** 2))
+    z = stats.norm.ppf(0.975)
+    np.testing.assert_allclose(estimate.low, estimate.priors - z * se, rtol=1e-9)
+    np.testing.assert_allclose(estimate.high, estimate.priors + z * se, rtol=1e-9)
+    assert estimate.p_value == pytest.approx(stats.chi2.sf(estimate.change_statistic, 1), rel=1e-9)
+    assert estimate.p_value < 1e-6  # 0.5 -> 0.7 on 3000 rows is a clear change
+
+
+def test_three_class_standard_errors_match_a_numerical_hessian() -> None:
+    posteriors, _ = _exact_posteriors(np.array([0.5, 0.3, 0.2]), 3000, seed=13)
+    estimate = estimate_priors_from_posteriors(posteriors, UNIFORM, CLASSES, tolerance=1e-13, confidence=0.9)
+    half_width = (estimate.high - estimate.low) / 2
+    expected = stats.norm.ppf(0.95) * _numerical_standard_errors(posteriors, UNIFORM, estimate.priors)
+    np.testing.assert_allclose(half_width, expected, rtol=1e-5)
+    np.testing.assert_allclose((estimate.high + estimate.low) / 2, estimate.priors, rtol=1e-12)
+
+
+def test_an_interval_is_clipped_to_zero_and_one() -> None:
+    posteriors = _two_class_posteriors(40, seed=14)
+    estimate = estimate_priors_from_posteriors(posteriors, np.array([0.5, 0.5]), CLASSES[:2], confidence=0.999999)
+    assert np.all(estimate.low >= 0.0) and np.all(estimate.high <= 1.0)
+    assert estimate.low[1] == 0.0 and estimate.high[0] == 1.0
