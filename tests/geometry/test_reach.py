@@ -272,3 +272,32 @@ def test_winning_margin_is_homogeneous_over_every_magnitude(k: int, exponent: in
         scaled_margin, scaled_posterior = winning_margin(loss * scale, row)
         assert scaled_margin == pytest.approx(margin * scale, rel=1e-6, abs=1e-7 * scale * np.ptp(loss))
         assert np.isclose(posterior.sum(), 1.0) and np.isclose(scaled_posterior.sum(), 1.0)
+
+
+# --- the tie tolerance: 1e-9 relative to the largest loss (policyc.geometry.decisions.margin_tolerance) ---
+
+# Three 0-1 actions; a3 the average of the first two (it ties them where they tie and loses elsewhere: an exact
+# tie, never a win); a4 lower by 0.01 on the first two classes (a win by 0.01 where they tie), dominating nobody.
+TIED = np.array([[0.0, 1.0, 1.0], [1.0, 0.0, 1.0], [1.0, 1.0, 0.0], [0.5, 0.5, 1.0], [0.49, 0.49, 1.5]])
+
+
+def unreachable(loss: np.ndarray, cost: float | None = None) -> list[tuple[str | int, ...]]:
+    found = run_rules(policy_for(loss, cost), CheckContext(), rules=(every_action_is_reachable,))
+    return sorted(d.path for d in found)
+
+
+@pytest.mark.parametrize("scale", [1e-6, 1.0, 1e6])
+def test_reachability_verdicts_do_not_depend_on_the_unit_of_the_losses(scale: float) -> None:
+    # EL-5 (references.md): scaling every loss by s > 0 changes no decision, so no verdict either; the exact tie
+    # stays a tie at every scale and the 0.01 win stays a win (at 1e-6 its lead, 1e-8, is still above the 1e-9 floor).
+    assert unreachable(TIED * scale) == [("loss", "a3")]
+
+
+@pytest.mark.parametrize("scale", [1.0, 1e6])
+@pytest.mark.parametrize(("lead", "reachable"), [(1.5e-9, True), (0.5e-9, False)])
+def test_a_lead_counts_as_a_win_only_above_1e_9_of_the_largest_loss(scale: float, lead: float, reachable: bool) -> None:
+    # The first two actions tie at P = (½, ½, 0) with risk ½; the third, ½ - lead there, leads by `lead`, and by
+    # lead·(1 - p₃) along that edge, so its margin is exactly `lead`; the largest loss is 1·scale.
+    loss = np.array([[0.0, 1.0, 1.0], [1.0, 0.0, 1.0], [0.5 - lead, 0.5 - lead, 1.0]]) * scale
+    assert margin_tolerance(loss) == pytest.approx(1e-9 * scale, rel=1e-12)
+    assert unreachable(loss) == ([] if reachable else [("loss", "a2")])

@@ -177,3 +177,59 @@ def test_a_failing_reachability_program_is_a_located_error(monkeypatch: pytest.M
     (diagnostic,) = [d for d in report.diagnostics if d.code == "loss-not-analysable"]
     assert (diagnostic.file, diagnostic.line, diagnostic.severity) == ("p.yaml", 6, Severity.WARNING)  # the loss: key
     assert "numerical trouble" in diagnostic.message
+
+
+# --- the numbers quoted in the matrix warnings ----------------------------------------------------------
+
+ZERO_ONE_THREE = """\
+policy: p
+classes: [a, b, c]
+priors: {a: 0.4, b: 0.3, c: 0.3}
+actions: [say_a, say_b, say_c]
+loss:
+  say_a: {a: 0, b: 1, c: 1}
+  say_b: {a: 1, b: 0, c: 1}
+  say_c: {a: 1, b: 1, c: 0}
+reject: {action: defer, cost: COST}
+invalid_input: reject
+evidence: {kind: log-likelihood, columns: {a: la, b: lb, c: lc}}
+"""
+
+
+def messages(text: str, code: str) -> list[str]:
+    report = check_document(parse_source(text, "p.yaml"))
+    return [d.message for d in report.diagnostics if d.code == code]
+
+
+def test_reject_never_taken_quotes_the_value_of_the_whole_matrix() -> None:
+    # Chow 1970 / references.md CH-2: under 0-1 loss with K = 3, deferring is taken only below V = (K - 1)/K = 2/3.
+    (message,) = messages(ZERO_ONE_THREE.replace("COST", "0.9"), "reject-never-taken")
+    assert "the reject cost 0.9 is at least V = 0.666667" in message
+    assert messages(ZERO_ONE_THREE.replace("COST", "0.6"), "reject-never-taken") == []
+
+
+def test_reject_always_taken_names_the_smallest_loss_wherever_it_is() -> None:
+    # The smallest risk over the simplex is the smallest loss (a vertex); here it sits in the last action's row.
+    text = ZERO_ONE_THREE.replace("0, b: 1, c: 1", "2, b: 3, c: 3").replace("1, b: 0, c: 1", "3, b: 2, c: 3")
+    text = text.replace("1, b: 1, c: 0}", "3, b: 3, c: 0.5}")
+    (message,) = messages(text.replace("COST", "0.25"), "reject-always-taken")
+    assert "the reject cost 0.25 is below every loss (0.5 is the smallest)" in message
+    assert messages(text.replace("COST", "0.5"), "reject-always-taken") == []  # equal to a loss: not below it
+
+
+def test_one_action_policy_has_its_region_everywhere() -> None:
+    text = """\
+policy: p
+classes: [a, b]
+priors: {a: 0.5, b: 0.5}
+actions: [only]
+loss: {only: {a: 1, b: 2}}
+invalid_input: error
+evidence: {kind: log-likelihood, columns: {a: la, b: lb}}
+"""
+    report = check_document(parse_source(text, "p.yaml"))
+    assert report.policy is not None
+    (region,) = check.action_regions(report.policy) or []
+    # no rival: the margin is unbounded and the example posterior is the centre of the simplex
+    assert region.reachable and region.margin == float("inf") and region.example_posterior == (0.5, 0.5)
+    assert not [d for d in report.diagnostics if d.code in ("unreachable-action", "reject-never-taken")]

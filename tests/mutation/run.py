@@ -23,6 +23,7 @@ from __future__ import annotations
 import argparse
 import contextlib
 import importlib
+import importlib.util
 import json
 import os
 import re
@@ -169,7 +170,7 @@ def _collect_coverage(report: Path, modules: Sequence[str], tests: Sequence[str]
             durations[report.nodeid] = durations.get(report.nodeid, 0.0) + report.duration
 
     cov.start()
-    exit_code = pytest.main(["-q", "-p", "no:cacheprovider", *tests], plugins=[Contexts()])
+    exit_code = pytest.main([*_pytest_arguments(), *tests], plugins=[Contexts()])
     cov.stop()
     data = cov.get_data()
     lines = {}
@@ -182,9 +183,20 @@ def _collect_coverage(report: Path, modules: Sequence[str], tests: Sequence[str]
 
 
 def _environment(copy: Path) -> dict[str, str]:
-    environment = dict(os.environ, PYTHONDONTWRITEBYTECODE="1", PYTHONPATH=str(copy))
+    # Plugins are loaded by name (_pytest_arguments): autoloading all of them costs seconds per mutant.
+    environment = dict(
+        os.environ, PYTHONDONTWRITEBYTECODE="1", PYTHONPATH=str(copy), PYTEST_DISABLE_PLUGIN_AUTOLOAD="1"
+    )
     environment.pop("PYTEST_ADDOPTS", None)
     return environment
+
+
+def _pytest_arguments() -> list[str]:
+    """Options for every pytest run: no cache, and of the installed plugins only hypothesis's."""
+    arguments = ["-q", "-p", "no:cacheprovider"]
+    if importlib.util.find_spec("_hypothesis_pytestplugin") is not None:
+        arguments += ["-p", "_hypothesis_pytestplugin"]
+    return arguments
 
 
 def _preload(modules: Iterable[str]) -> None:
@@ -218,7 +230,7 @@ def _child(copy: Path, mutant: Mutant, tests: Sequence[str]) -> None:
     try:
         import pytest
 
-        code = int(pytest.main(["-x", "-q", "-p", "no:cacheprovider", *tests], plugins=[_SameExamples()]))
+        code = int(pytest.main(["-x", *_pytest_arguments(), *tests], plugins=[_SameExamples()]))
     finally:
         os._exit(code)
 
