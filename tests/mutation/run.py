@@ -45,8 +45,6 @@ ROOT = Path(__file__).resolve().parents[2]
 EQUIVALENT_FILE = Path(__file__).with_name("equivalent.txt")
 # The modules whose scores the contributor guide records.
 DEFAULT_MODULES = (
-    "policyc/runtime/kernel.py",
-    "policyc/runtime/rule.py",
     "policyc/geometry/decisions.py",
     "policyc/geometry/reach.py",
     "policyc/geometry/sampling.py",
@@ -60,6 +58,9 @@ DEFAULT_MODULES = (
     "policyc/review/diff/posterior.py",
     "policyc/review/diff/data.py",
     "policyc/review/diff/gates.py",
+    "policyc/runtime/kernel.py",
+    "policyc/runtime/rule.py",
+    "policyc/runtime/inputs.py",
 )
 NOT_COPIED = (".git", ".venv", ".ci-venv", "__pycache__", ".hypothesis", "*_cache", "*.egg-info", "build")
 # Imported before forking so that every mutant does not pay for them again; never the package under test.
@@ -81,6 +82,8 @@ PRELOAD = (
 )
 EQUIVALENT_LINE = re.compile(r"^(?P<key>\S+::\S+ `.*?` -> `.*?`)\s+(?:—|--)\s+(?P<reason>\S.*)$")
 POLL_SECONDS = 0.02
+FIRST_STAGE_TESTS = 8
+STAGE_START_SECONDS = 20.0
 
 
 @dataclass
@@ -240,29 +243,38 @@ def _status(exit_code: int) -> str:
     return "survived" if exit_code == 0 else "killed"
 
 
+def _stages(tests: list[str]) -> list[list[str]]:
+    """The fastest few tests first, then the rest: most mutants fail one of the first, before the slow collection
+    of every covering test file."""
+    return [tests[:FIRST_STAGE_TESTS], tests[FIRST_STAGE_TESTS:]] if len(tests) > FIRST_STAGE_TESTS else [tests]
+
+
 def _run_mutants(
-    root: Path, copies: Sequence[Path], jobs: list[tuple[Mutant, list[str], float]], progress: bool
+    root: Path,
+    copies: Sequence[Path],
+    jobs: list[tuple[Mutant, list[str], float]],
+    progress: bool,
+    record: Path | None = None,
 ) -> list[Outcome]:
-    """Run each (mutant, tests, time limit) in a forked process, one per copy at a time."""
+    """Run each (mutant, tests, time limit) in forked processes, one mutant per copy at a time."""
     outcomes: list[Outcome] = []
     pending = list(reversed(jobs))
-    running: dict[int, tuple[Mutant, Path, float, float]] = {}
+    running: dict[int, tuple[Mutant, Path, float, float, list[list[str]]]] = {}
     free = list(copies)
     while pending or running:
         while pending and free:
             mutant, tests, limit = pending.pop()
             copy = free.pop()
             (copy / mutant.path).write_text(mutant.source, encoding="utf-8")
-            pid = os.fork()
-            if pid == 0:
-                _child(copy, mutant, tests)
-            running[pid] = (mutant, copy, time.monotonic(), limit)
+            first, *later = _stages(tests)
+            running[_fork(copy, mutant, first)] = (mutant, copy, time.monotonic(), limit, later)
         time.sleep(POLL_SECONDS)
-        for pid, (mutant, copy, started, limit) in list(running.items()):
+        for pid, (mutant, copy, started, limit, later) in list(running.items()):
             finished, wait_status = os.waitpid(pid, os.WNOHANG)
             elapsed = time.monotonic() - started
             if finished == 0 and elapsed < limit:
                 continue
+            del running[pid]
             if finished == 0:
                 with contextlib.suppress(ProcessLookupError):
                     os.killpg(pid, signal.SIGKILL)
@@ -270,13 +282,31 @@ def _run_mutants(
                 status = "timeout"
             else:
                 status = _status(os.waitstatus_to_exitcode(wait_status))
+            if status == "survived" and later:
+                running[_fork(copy, mutant, later[0])] = (mutant, copy, started, limit, later[1:])
+                continue
             shutil.copyfile(root / mutant.path, copy / mutant.path)
-            del running[pid]
             free.append(copy)
             outcomes.append(Outcome(mutant, status, elapsed))
-            if progress:
-                print(f"  {len(outcomes)}/{len(jobs)} {status:8} {mutant.path}:{mutant.line}", file=sys.stderr)
+            _report(outcomes[-1], f"{len(outcomes)}/{len(jobs)}", progress, record)
     return outcomes
+
+
+def _fork(copy: Path, mutant: Mutant, tests: list[str]) -> int:
+    pid = os.fork()
+    if pid == 0:
+        _child(copy, mutant, tests)
+    return pid
+
+
+def _report(outcome: Outcome, count: str, progress: bool, record: Path | None) -> None:
+    mutant = outcome.mutant
+    if progress:
+        print(f"  {count} {outcome.status:8} {mutant.path}:{mutant.line}", file=sys.stderr)
+    if record is not None:
+        with record.open("a", encoding="utf-8") as handle:
+            entry = {"path": mutant.path, "line": mutant.line, "key": mutant.key, "status": outcome.status}
+            handle.write(json.dumps(entry) + "\n")
 
 
 def _check_harness(root: Path, copies: Sequence[Path], work: Sequence[tuple[Mutant, list[str], float]]) -> None:
@@ -305,6 +335,7 @@ def run(
     time_factor: float = 3.0,
     min_seconds: float = 10.0,
     progress: bool = False,
+    record: Path | None = None,
 ) -> list[Outcome]:
     """Mutate ``modules`` (paths relative to ``root``) and run the covering tests from ``tests`` against each.
 
@@ -326,9 +357,11 @@ def run(
                     outcomes.append(Outcome(mutant, "no-tests"))
                 else:
                     baseline = sum(coverage.durations.get(test, 0.0) for test in covering)
-                    work.append((mutant, covering, max(min_seconds, time_factor * baseline + 5.0)))
+                    # each stage also pays pytest's start and collection, up to STAGE_START_SECONDS on a busy machine
+                    allowance = STAGE_START_SECONDS * len(_stages(covering))
+                    work.append((mutant, covering, max(min_seconds, time_factor * baseline + allowance)))
         _check_harness(root, copies, work)
-        outcomes += _run_mutants(root, copies, work, progress)
+        outcomes += _run_mutants(root, copies, work, progress, record)
     order = {module: index for index, module in enumerate(modules)}
     return sorted(outcomes, key=lambda o: (order[o.mutant.path], o.mutant.line, o.mutant.key))
 
@@ -372,6 +405,7 @@ def _arguments(argv: Sequence[str] | None) -> argparse.Namespace:
     parser.add_argument("--equivalent", type=Path, default=EQUIVALENT_FILE, help="the list of equivalent mutants")
     parser.add_argument("--collect-coverage", type=Path, help=argparse.SUPPRESS)
     parser.add_argument("--quiet", action="store_true", help="no progress lines")
+    parser.add_argument("--record", type=Path, help="append each outcome to this file as a JSON line as it comes")
     return parser.parse_args(argv)
 
 
@@ -392,6 +426,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         jobs=args.jobs,
         time_factor=args.time_factor,
         progress=not args.quiet,
+        record=args.record,
     )
     stale = sorted(
         key for key in equivalents if key.split("::")[0] in modules and key not in {o.mutant.key for o in outcomes}

@@ -287,3 +287,26 @@ def test_evaluate_report_lists_the_limits(tmp_path: Path) -> None:
     ]
     text = CliRunner().invoke(main, ["evaluate", str(R6), str(HOLDOUT), "--label", "grade"]).stdout
     assert "operating limits on this data" in text and "at most 5.00% get hold_for_inspector" in text
+
+def test_curve_points_off_the_own_cost_are_hand_computed(hand: tuple[Path, Path]) -> None:
+    # Chow's rule at cost c: accept argmin R(a|x) when min_a R(a|x) <= c. Plain-action minimum risks of the
+    # eight rows, min(10q, 1 - q): 0.1, 0.5, 0.9, 0.85, 0.5, 0.1, 0.2, 0.7 (hand-computed).
+    policy, data = hand
+    result = evaluate(load_rule_or_policy(policy), data, "truth", extra_costs=(0.45,))
+    at = {p.reject_cost: p for p in result.curve}
+    # c = 0.45: rows q = 0.01, 0.9, 0.02 are accepted (the 0.9 row is an ok declined: one error), five deferred
+    point = at[0.45]
+    assert (point.risk, point.reject_rate, point.error_rate) == pytest.approx((3.25 / 8, 5 / 8, 1 / 8), abs=1e-12)
+    assert point.accepted_error_rate == pytest.approx(1 / 3, abs=1e-12)  # errors / accepted rows
+    # c = 0: everything is deferred, so no accepted row has an error rate
+    assert (at[0.0].reject_rate, at[0.0].error_rate, at[0.0].risk) == (1.0, 0.0, 0.0)
+    assert np.isnan(at[0.0].accepted_error_rate)
+
+
+def test_everything_deferred_has_no_accepted_error_rate(hand: tuple[Path, Path]) -> None:
+    policy, data = hand
+    policy.write_text(HAND_POLICY.replace("cost: 0.8", "cost: 0.001"), encoding="utf-8")
+    result = evaluate(load_rule_or_policy(policy), data, "truth")
+    assert result.reject_rate == 1.0 and result.error_rate == 0.0
+    assert np.isnan(result.accepted_error_rate)
+    assert result.risk.estimate == pytest.approx(0.001, abs=1e-15)
