@@ -4,8 +4,8 @@ Each mutant changes one expression: a comparison flipped or moved across its bou
 an arithmetic or bitwise operator swapped, a constant changed, a negation dropped,
 ``and``/``or``, ``all``/``any``, ``min``/``max`` (and their numpy relatives) swapped,
 an ``axis=`` argument changed, or a slice bound dropped. Annotations, decorators,
-docstrings, ``__all__`` and ``TYPE_CHECKING`` blocks are left alone: a change there
-cannot change a decision.
+docstrings, ``__all__``, ``TYPE_CHECKING`` blocks and ``zip``'s ``strict=`` flag are left
+alone: a change there cannot change a decision.
 
 A mutant is named by a key that survives edits elsewhere in the file:
 ``path::function `before` -> `after```, with ``#2``, ``#3`` after the function when the
@@ -165,10 +165,11 @@ def _left_alone(node: ast.AST) -> bool:
 
 
 def _axis_constants(node: ast.Call) -> list[ast.AST]:
-    """The constant inside an ``axis=`` argument, which changes through the axis mutation only."""
+    """The constant inside an ``axis=`` argument, which changes through the axis mutation only, and the
+    ``strict=`` flag of ``zip``: a guard against lengths that differ, never a change of any value."""
     found: list[ast.AST] = []
     for keyword in node.keywords:
-        if keyword.arg == "axis":
+        if keyword.arg == "axis" or (keyword.arg == "strict" and isinstance(node.func, ast.Name)):
             found.extend(ast.walk(keyword.value))
     return found
 

@@ -355,6 +355,7 @@ def run(
                     outcomes.append(Outcome(mutant, "equivalent"))
                 elif not covering:
                     outcomes.append(Outcome(mutant, "no-tests"))
+                    _report(outcomes[-1], "-", progress, record)
                 else:
                     baseline = sum(coverage.durations.get(test, 0.0) for test in covering)
                     # each stage also pays pytest's start and collection, up to STAGE_START_SECONDS on a busy machine

@@ -283,3 +283,83 @@ def test_an_interval_is_clipped_to_zero_and_one() -> None:
     estimate = estimate_priors_from_posteriors(posteriors, np.array([0.5, 0.5]), CLASSES[:2], confidence=0.999999)
     assert np.all(estimate.low >= 0.0) and np.all(estimate.high <= 1.0)
     assert estimate.low[1] == 0.0 and estimate.high[0] == 1.0
+
+
+def _longhand_em(posteriors: np.ndarray, rule_priors: np.ndarray, tolerance: float) -> tuple[np.ndarray, int]:
+    """references.md SA-2 written out: E-step correction, M-step mean, stop once no prior moves by tolerance."""
+    priors, iterations = rule_priors.copy(), 0
+    while True:
+        corrected = posteriors / rule_priors * priors
+        updated = (corrected / corrected.sum(axis=1, keepdims=True)).mean(axis=0)
+        iterations += 1
+        moved = np.max(np.abs(updated - priors))
+        priors = updated
+        if moved < tolerance:
+            return priors, iterations
+
+
+@pytest.mark.parametrize("means", [(0.0, 0.6), (0.0, 0.6, 1.5)])
+def test_iteration_count_follows_the_stopping_rule_at_the_default_tolerance(means: tuple[float, ...]) -> None:
+    # Overlapping classes converge slowly (hundreds of steps), so the count pins the default tolerance of 1e-10 and
+    # the rule "no prior moves by as much as the tolerance" (with three classes the priors move by different amounts).
+    rng = np.random.default_rng(17)
+    mix = np.array([0.35, 0.65]) if len(means) == 2 else np.array([0.3, 0.3, 0.4])
+    labels = rng.choice(len(means), size=1500, p=mix)
+    x = rng.normal(np.array(means)[labels], 1.0)
+    posteriors = special.softmax(np.stack([stats.norm(m, 1.0).logpdf(x) for m in means], axis=1), axis=1)
+    rule_priors = np.full(len(means), 1 / len(means))
+    estimate = estimate_priors_from_posteriors(posteriors, rule_priors, CLASSES[: len(means)])
+    priors, iterations = _longhand_em(posteriors, rule_priors, 1e-10)
+    assert estimate.converged and estimate.iterations == iterations > 50
+    np.testing.assert_allclose(estimate.priors, priors, rtol=1e-13)
+    assert estimate.rows == 1500
+
+
+def test_nearly_identical_classes_hit_the_default_iteration_cap() -> None:
+    # Classes N(0, 1) and N(0.02, 1) barely differ, so EM's linear rate is within 1e-3 of 1: 10 000 steps still move
+    # the estimate by more than 1e-10, and the estimate stops at the cap saying it did not converge.
+    rng = np.random.default_rng(2)
+    x = rng.normal(0.0, 1.0, size=400)
+    posteriors = special.softmax(np.stack([stats.norm(0.0).logpdf(x), stats.norm(0.02).logpdf(x)], axis=1), axis=1)
+    estimate = estimate_priors_from_posteriors(posteriors, np.array([0.5, 0.5]), CLASSES[:2])
+    assert (estimate.iterations, estimate.converged) == (10_000, False)
+
+
+def test_one_class_with_a_prior_has_nothing_to_test() -> None:
+    # K' = 1 class with a non-zero prior: χ² on 0 degrees of freedom is no test, so the p-value is 1.
+    posteriors = np.array([[1.0, 0.0], [1.0, 0.0], [1.0, 0.0]])
+    estimate = estimate_priors_from_posteriors(posteriors, np.array([1.0, 0.0]), CLASSES[:2])
+    assert estimate.priors.tolist() == [1.0, 0.0]
+    assert (estimate.change_statistic, estimate.p_value) == (0.0, 1.0)
+    assert estimate.low.tolist() == [1.0, 0.0] and estimate.high.tolist() == [1.0, 0.0]
+
+
+def _loglik_rule(tmp_path: Path, rows: list[tuple[str, str]]) -> tuple[object, Path]:
+    from tests.helpers import rule_from_text, two_class_text
+
+    data = tmp_path / "scores.csv"
+    data.write_text("ll_c0,ll_c1\n" + "".join(f"{a},{b}\n" for a, b in rows), encoding="utf-8")
+    return rule_from_text(two_class_text(invalid_input="reject", reject_cost=0.4)), data
+
+
+def test_priors_of_a_file_use_its_valid_rows_and_a_95_percent_interval(tmp_path: Path) -> None:
+    from policyc.review.priors import estimate_priors, posteriors_of_file
+
+    rule, data = _loglik_rule(tmp_path, [("0.0", "-1.0"), ("nan", "0.0"), ("-2.0", "0.0"), ("-0.5", "0.0")])
+    posteriors = posteriors_of_file(rule, data)  # type: ignore[arg-type]
+    assert posteriors.shape == (3, 2)  # the NaN row is not evidence
+    estimate = estimate_priors(rule, data)  # type: ignore[arg-type]
+    reference = estimate_priors_from_posteriors(posteriors, np.array([0.5, 0.5]), ("c0", "c1"), confidence=0.95)
+    assert estimate.confidence == 0.95
+    np.testing.assert_array_equal(estimate.low, reference.low)
+
+
+def test_a_file_with_one_valid_row_is_enough_and_none_is_refused(tmp_path: Path) -> None:
+    from policyc.errors import DataError
+    from policyc.review.priors import posteriors_of_file
+
+    rule, data = _loglik_rule(tmp_path, [("nan", "0.0"), ("-1.0", "0.0")])
+    assert posteriors_of_file(rule, data).shape == (1, 2)  # type: ignore[arg-type]
+    rule, data = _loglik_rule(tmp_path, [("nan", "0.0"), ("0.0", "nan")])
+    with pytest.raises(DataError, match="no valid rows to estimate priors from"):
+        posteriors_of_file(rule, data)  # type: ignore[arg-type]
