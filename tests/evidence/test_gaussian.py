@@ -784,3 +784,41 @@ def test_a_zero_covariance_is_refused_with_an_infinite_ratio() -> None:
     with pytest.raises(gaussian_module.FitProblem, match="eigenvalue ratio infinite") as info:
         fit_rows([rows, rows + 1.0], "diagonal", "none")
     assert info.value.code == "singular-covariance"
+
+
+@pytest.mark.parametrize(("shrinkage", "passes"), [("auto", 2), ("none", 1), (0.2, 1)])
+def test_the_fit_reads_the_data_twice_only_for_ledoit_wolf(
+    iris: tuple[Path, np.ndarray, np.ndarray],
+    shrinkage: str | float,
+    passes: int,
+    monkeypatch: pytest.MonkeyPatch,
+    tmp_path: Path,
+) -> None:
+    # The progress callback is told every batch's row count against the expected total (rows × passes; a Parquet
+    # file knows its row count).
+    from policyc.language.model import build_policy
+    from policyc.language.source import parse_source
+
+    _, X, y = iris
+    directory = tmp_path
+    table = {name: X[:, j] for j, name in enumerate(IRIS_FEATURES)} | {"label": [IRIS_CLASSES[k] for k in y]}
+    pq.write_table(pa.table(table), directory / "iris.parquet")
+    monkeypatch.setattr(gaussian_module, "FIT_BATCH_ROWS", 40)
+    text = gaussian_policy_text(IRIS_CLASSES, IRIS_FEATURES, "iris.parquet", shrinkage=shrinkage)
+    policy = build_policy(parse_source(text, "policy.yaml", base_dir=directory))
+    calls: list[tuple[int, int | None]] = []
+    gaussian_module.fit(policy, policy.evidence, directory, lambda rows, total: calls.append((rows, total)))  # type: ignore[arg-type]
+    assert [rows for rows, _ in calls] == [40, 40, 25] * passes
+    assert {total for _, total in calls} == {X.shape[0] * passes}
+
+
+def test_fit_covariances_never_asks_for_fourth_moments_without_auto_shrinkage() -> None:
+    rows = np.random.default_rng(3).normal(size=(12, 2))
+    moments = [Moments.of(rows[:6]), Moments.of(rows[6:])]
+
+    def refuse(means: np.ndarray) -> np.ndarray:
+        raise AssertionError("a second pass over the data was started")
+
+    for covariance in ("full", "tied", "diagonal"):
+        fit_covariances(moments, ["a", "b"], covariance, "none", refuse)
+        fit_covariances(moments, ["a", "b"], covariance, 0.3, refuse)
