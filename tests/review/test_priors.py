@@ -335,7 +335,7 @@ def test_one_class_with_a_prior_has_nothing_to_test() -> None:
 
 
 def _loglik_rule(tmp_path: Path, rows: list[tuple[str, str]]) -> tuple[object, Path]:
-    from tests.helpers import rule_from_text, two_class_text
+    from helpers import rule_from_text, two_class_text
 
     data = tmp_path / "scores.csv"
     data.write_text("ll_c0,ll_c1\n" + "".join(f"{a},{b}\n" for a, b in rows), encoding="utf-8")

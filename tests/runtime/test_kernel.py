@@ -2,7 +2,8 @@
 
 The decide-only path (chunk buffers, no n-long posteriors), the one-row path and the tied and diagonal forms of
 the Gaussian scores are rewritten arithmetic: each must give the decisions of the full computation, and the
-posteriors must match scipy's log-densities through a softmax.
+posteriors must match scipy's log-densities through a softmax. Then the kernel at its edges: the exact reject
+risk, ties, the posterior-row checks, one-action rules and the invalid-rows message.
 """
 
 from __future__ import annotations
@@ -10,12 +11,14 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import scipy.special
-from helpers import gaussian_rule, loglik_evidence, policy_text, random_spd, rule_from_text
+from helpers import gaussian_rule, loglik_evidence, policy_text, posterior_evidence, random_spd, rule_from_text
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.stats import multivariate_normal
 
 from policyc.runtime import InputError, Rule, kernel
+
+from policyc.runtime import ArtefactError, InputError, Rule, kernel
 
 FORMS = {"full": 0.0, "tied": 1.0, "diagonal": 2.0}
 
@@ -160,3 +163,132 @@ def test_float32_agrees_with_float64_to_its_precision(covariance: str) -> None:
 def test_only_float32_and_float64_kernels_exist(dtype: object) -> None:
     with pytest.raises(InputError, match="dtype must be float32 or float64"):
         random_rule(13, "full").astype(dtype)  # type: ignore[arg-type]
+
+# --- the kernel at its edges ------------------------------------------------------------------------
+
+ZERO_ONE_3 = 1.0 - np.eye(3)
+
+
+def loglik_rule(loss: np.ndarray, reject_cost: float | None, priors=(0.2, 0.3, 0.5)) -> Rule:
+    classes = [f"c{k}" for k in range(loss.shape[1])]
+    text = policy_text(
+        classes=classes,
+        priors=priors,
+        actions=[f"a{a}" for a in range(loss.shape[0])],
+        loss=loss,
+        evidence=loglik_evidence(classes),
+        reject_cost=reject_cost,
+        invalid_input="reject" if reject_cost is not None else "error",
+    )
+    return rule_from_text(text)
+
+
+def test_the_reject_risk_is_exactly_the_reject_cost() -> None:
+    # R(reject|x) = d Σ_k P(k|x) = d; computed as the product it would be d(1 ± ε) wherever ΣP rounds away from 1,
+    # which moves act/reject decisions at a tie.
+    rule = loglik_rule(ZERO_ONE_3, 0.1)
+    X = np.random.default_rng(0).normal(scale=3.0, size=(2000, 3))
+    risks = rule.risks(X)
+    sums = rule.posteriors(X).sum(axis=1)
+    assert np.any(sums != 1.0)  # the case the exact value guards against does occur
+    assert np.all(risks[:, -1] == 0.1)
+    # the plain actions keep R(a|x) = Σ_k λ(a|k) P(k|x) (Duda, Hart & Stork 2001, §2.2; references.md LR-1)
+    np.testing.assert_allclose(risks[:, :3], rule.posteriors(X) @ ZERO_ONE_3.T, rtol=1e-15)
+
+
+def test_a_constant_action_row_also_has_its_constant_risk() -> None:
+    loss = np.array([[0.0, 1.0, 1.0], [0.3, 0.3, 0.3], [1.0, 1.0, 0.0]])
+    rule = loglik_rule(loss, None)
+    X = np.random.default_rng(1).normal(scale=3.0, size=(500, 3))
+    assert np.all(rule.risks(X)[:, 1] == 0.3)
+
+
+def test_an_exact_tie_between_an_action_and_the_reject_cost_goes_to_the_action() -> None:
+    # Chow 1970 (references.md CH-1): accept iff max posterior >= 1 - t; at equality the action is taken.
+    # Posteriors (0.75, 0.25) are exact in binary; log-likelihoods ln 0.75, ln 0.25 under equal priors give them.
+    loss = np.array([[0.0, 1.0], [1.0, 0.0]])
+    rule = loglik_rule(loss, 0.25, priors=(0.5, 0.5))
+    X = np.log(np.array([[0.75, 0.25], [0.25, 0.75], [0.7, 0.3]]))
+    risks = rule.risks(X)
+    tied = risks[:, :2].min(axis=1) == 0.25
+    assert tied[:2].all()  # these two rows tie exactly
+    assert rule.decide_names(X).tolist() == ["a0", "a1", "reject"]
+
+
+def posterior_rule(sum_tolerance: float) -> Rule:
+    classes = ["c0", "c1"]
+    evidence = posterior_evidence(classes, [0.5, 0.5]) | {"sum_tolerance": sum_tolerance}
+    text = policy_text(
+        classes=classes,
+        priors=[0.5, 0.5],
+        actions=["a0", "a1"],
+        loss=np.array([[0.0, 1.0], [1.0, 0.0]]),
+        evidence=evidence,
+        reject_cost=0.4,
+        invalid_input="reject",
+    )
+    return rule_from_text(text)
+
+
+def test_posterior_rows_must_lie_in_zero_one_even_when_they_sum_to_one() -> None:
+    rule = posterior_rule(1e-6)
+    X = np.array([[1.0 + 5e-7, 0.0], [-5e-7, 1.0], [0.4, 0.6], [1.0, 0.0]])
+    assert rule.explain(X).valid.tolist() == [False, False, True, True]
+
+
+def test_the_sum_tolerance_is_inclusive() -> None:
+    # |Σp - 1| <= sum_tolerance is valid; 2^-10 and its multiples are exact in binary, so the boundary is exact.
+    rule = posterior_rule(2.0**-10)
+    X = np.array([[0.5, 0.5 - 2.0**-10], [0.5, 0.5 + 2.0**-10], [0.5, 0.5 - 2.0**-9], [0.5, 0.5 + 2.0**-9]])
+    assert rule.explain(X).valid.tolist() == [True, True, False, False]
+
+
+@pytest.mark.parametrize("kind", ["posterior", "log-likelihood"])
+def test_supplied_evidence_needs_one_column_per_class(kind: str) -> None:
+    rule = posterior_rule(1e-6) if kind == "posterior" else loglik_rule(ZERO_ONE_3, 0.4)
+    manifest = dict(rule.manifest) | {"features": list(rule.features)[:-1]}
+    with pytest.raises(ArtefactError, match="'features' must name one column per class"):
+        Rule(manifest, dict(rule.params))
+
+
+def test_explain_on_a_one_action_rule_has_no_runner_up() -> None:
+    rule = loglik_rule(np.array([[1.0, 2.0, 3.0]]), None)
+    explained = rule.explain(np.zeros((2, 3)))
+    assert explained.action.tolist() == [0, 0] and explained.action_name.tolist() == ["a0", "a0"]
+    assert explained.runner_up.tolist() == [-1, -1] and explained.runner_up_name.tolist() == [None, None]
+    assert np.isnan(explained.margin).all()
+
+
+def test_explain_margin_is_the_runner_up_risk_minus_the_chosen_risk() -> None:
+    rule = loglik_rule(ZERO_ONE_3, 0.5)
+    X = np.log(np.array([[0.6, 0.3, 0.1], [0.2, 0.2, 0.6], [np.nan, 0.3, 0.5]]) / (0.2, 0.3, 0.5))
+    explained = rule.explain(X)
+    # P = (0.6, 0.3, 0.1): R = (0.4, 0.7, 0.9, reject 0.5): a0 chosen, the reject option runner-up, margin 0.1;
+    # P = (0.2, 0.2, 0.6): R = (0.8, 0.8, 0.4, 0.5): a2 chosen, again the reject option at 0.1 (hand-computed)
+    assert explained.action.tolist()[:2] == [0, 2] and explained.runner_up.tolist() == [3, 3, -1]
+    np.testing.assert_allclose(explained.margin[:2], [0.1, 0.1], atol=1e-12)
+    assert np.isnan(explained.margin[2]) and explained.runner_up_name[2] is None
+
+
+def test_invalid_rows_message_shows_ten_rows_then_counts_the_rest() -> None:
+    valid = np.ones(20, dtype=bool)
+    valid[[1, 3, 4, 5, 6, 7, 8, 9, 10, 11, 12, 15]] = False
+    message = kernel.invalid_rows_message(valid)
+    assert "row(s) 1, 3, 4, 5, 6, 7, 8, 9, 10, 11 and 2 more (0-based)" in message
+    assert "row(s) 3, 5, 6, 7, 8, 9, 10, 11, 12, 13 and 2 more (2-based)" in kernel.invalid_rows_message(valid, 2)
+    exactly_ten = valid.copy()
+    exactly_ten[[12, 15]] = True
+    assert "11 (0-based)" in kernel.invalid_rows_message(exactly_ten)
+
+
+def test_invalid_rows_message_names_the_columns_of_each_row() -> None:
+    prepared = np.array([[0.0, 1.0], [np.nan, 1.0], [np.inf, -np.inf]])
+    valid = np.array([True, False, False])
+    message = kernel.invalid_rows_message(valid, prepared=prepared, features=("x", "y"))
+    assert message.endswith("(row 1: 'x'; row 2: 'x', 'y')")
+
+
+def test_invalid_input_error_names_rows_and_columns() -> None:
+    rule = loglik_rule(ZERO_ONE_3, None)
+    with pytest.raises(InputError, match=r"row\(s\) 1 \(0-based\).*\(row 1: 'll_c1'\)"):
+        rule.decide(np.array([[0.0, 0.0, 0.0], [0.0, np.nan, 0.0]]))
