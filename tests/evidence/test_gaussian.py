@@ -768,13 +768,14 @@ def test_row_count_boundary_per_covariance_structure(covariance: str, shrinkage:
 )
 def test_an_ill_conditioned_covariance_is_refused_from_the_limit_up(ratio: float, refused: bool) -> None:
     # Positive definite but with eigenvalue ratio ≥ CONDITION_LIMIT (1e12): float64 whitening would lose most digits.
-    eigenvalues = np.array([1.0, 1.0 / ratio])
-    rows = np.vstack([np.diag(np.sqrt(eigenvalues)), -np.diag(np.sqrt(eigenvalues))])  # S = diag(eigenvalues) / 2
+    eigenvalues = np.array([1.0, 0.1, 1.0 / ratio])
+    # scatter 2·diag(λ) over 2 rows: the ML covariance is diag(λ) exactly, so the ratio is exactly `ratio`
+    moments = [Moments(2, np.zeros(3), 2.0 * np.diag(eigenvalues)), Moments(2, np.ones(3), 2.0 * np.eye(3))]
     if not refused:
-        fit_rows([rows, rows], "full", "none")
+        fit_covariances(moments, ["a", "b"], "diagonal", "none", None)
         return
     with pytest.raises(gaussian_module.FitProblem) as info:
-        fit_rows([rows, rows], "full", "none")
+        fit_covariances(moments, ["a", "b"], "diagonal", "none", None)
     assert info.value.code == "singular-covariance"
     assert f"eigenvalue ratio {ratio:.3g}" in info.value.message
 
@@ -822,3 +823,17 @@ def test_fit_covariances_never_asks_for_fourth_moments_without_auto_shrinkage() 
     for covariance in ("full", "tied", "diagonal"):
         fit_covariances(moments, ["a", "b"], covariance, "none", refuse)
         fit_covariances(moments, ["a", "b"], covariance, 0.3, refuse)
+
+
+def test_without_a_base_directory_a_relative_training_path_is_read_from_the_working_directory(
+    iris: tuple[Path, np.ndarray, np.ndarray], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    from policyc.language.model import build_policy
+    from policyc.language.source import parse_source
+
+    directory, X, _ = iris
+    text = gaussian_policy_text(IRIS_CLASSES, IRIS_FEATURES, "iris.csv")
+    policy = build_policy(parse_source(text, "policy.yaml", base_dir=directory))
+    monkeypatch.chdir(directory)
+    fitted = gaussian_module.fit(policy, policy.evidence, None)  # type: ignore[arg-type]
+    assert fitted.training_counts == {"setosa": 50, "versicolor": 35, "virginica": 20}
