@@ -831,7 +831,7 @@ def test_without_a_base_directory_a_relative_training_path_is_read_from_the_work
     from policyc.language.model import build_policy
     from policyc.language.source import parse_source
 
-    directory, X, _ = iris
+    directory, _, _ = iris
     text = gaussian_policy_text(IRIS_CLASSES, IRIS_FEATURES, "iris.csv")
     policy = build_policy(parse_source(text, "policy.yaml", base_dir=directory))
     monkeypatch.chdir(directory)
