@@ -353,6 +353,7 @@ def run(
                 covering = coverage.tests_for(mutant)
                 if mutant.key in equivalents:
                     outcomes.append(Outcome(mutant, "equivalent"))
+                    _report(outcomes[-1], "-", progress, record)
                 elif not covering:
                     outcomes.append(Outcome(mutant, "no-tests"))
                     _report(outcomes[-1], "-", progress, record)
