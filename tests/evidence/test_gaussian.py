@@ -684,6 +684,7 @@ def test_progress_counts_each_row_once_per_named_pass(tmp_path: Path) -> None:
     rows = len((PACKHOUSE.parent / "train.csv").read_text(encoding="utf-8").splitlines()) - 1
     assert seen == {"pass 1 of 2": rows, "pass 2 of 2": rows}
 
+
 # --- boundaries of the fit: scale of the data, one feature, row counts, conditioning --------------------
 
 
@@ -787,30 +788,30 @@ def test_a_zero_covariance_is_refused_with_an_infinite_ratio() -> None:
     assert info.value.code == "singular-covariance"
 
 
-@pytest.mark.parametrize(("shrinkage", "passes"), [("auto", 2), ("none", 1), (0.2, 1)])
+@pytest.mark.parametrize(
+    ("shrinkage", "stages"), [("auto", ["pass 1 of 2", "pass 2 of 2"]), ("none", [""]), (0.2, [""])]
+)
 def test_the_fit_reads_the_data_twice_only_for_ledoit_wolf(
     iris: tuple[Path, np.ndarray, np.ndarray],
     shrinkage: str | float,
-    passes: int,
+    stages: list[str],
     monkeypatch: pytest.MonkeyPatch,
     tmp_path: Path,
 ) -> None:
-    # The progress callback is told every batch's row count against the expected total (rows × passes; a Parquet
-    # file knows its row count).
+    # Each pass reports every batch's row count against the file's row count (a Parquet file knows it), named by
+    # pass when there are two.
     from policyc.language.model import build_policy
     from policyc.language.source import parse_source
 
     _, X, y = iris
-    directory = tmp_path
     table = {name: X[:, j] for j, name in enumerate(IRIS_FEATURES)} | {"label": [IRIS_CLASSES[k] for k in y]}
-    pq.write_table(pa.table(table), directory / "iris.parquet")
+    pq.write_table(pa.table(table), tmp_path / "iris.parquet")
     monkeypatch.setattr(gaussian_module, "FIT_BATCH_ROWS", 40)
     text = gaussian_policy_text(IRIS_CLASSES, IRIS_FEATURES, "iris.parquet", shrinkage=shrinkage)
-    policy = build_policy(parse_source(text, "policy.yaml", base_dir=directory))
-    calls: list[tuple[int, int | None]] = []
-    gaussian_module.fit(policy, policy.evidence, directory, lambda rows, total: calls.append((rows, total)))  # type: ignore[arg-type]
-    assert [rows for rows, _ in calls] == [40, 40, 25] * passes
-    assert {total for _, total in calls} == {X.shape[0] * passes}
+    policy = build_policy(parse_source(text, "policy.yaml", base_dir=tmp_path))
+    calls: list[tuple[int, int | None, str]] = []
+    gaussian_module.fit(policy, policy.evidence, tmp_path, lambda *call: calls.append(call))  # type: ignore[arg-type]
+    assert calls == [(rows, X.shape[0], stage) for stage in stages for rows in (40, 40, 25)]
 
 
 def test_fit_covariances_never_asks_for_fourth_moments_without_auto_shrinkage() -> None:
