@@ -310,3 +310,15 @@ def test_everything_deferred_has_no_accepted_error_rate(hand: tuple[Path, Path])
     assert result.reject_rate == 1.0 and result.error_rate == 0.0
     assert np.isnan(result.accepted_error_rate)
     assert result.risk.estimate == pytest.approx(0.001, abs=1e-15)
+
+
+def test_per_class_error_rates_and_invalid_rows_are_counted(hand: tuple[Path, Path]) -> None:
+    policy, data = hand
+    policy.write_text(HAND_POLICY + "invalid_input: reject\n", encoding="utf-8")
+    with data.open("a", encoding="utf-8") as handle:
+        handle.write("nan,0.5,ok\ninf,0.5,bad\n")
+    result = evaluate(load_rule_or_policy(policy), data, "truth")
+    assert result.invalid_rows == 2
+    # hand-computed: ok has 5 rows (one declined: an error), bad has 5 rows (one accepted: an error)
+    assert [entry.rows for entry in result.per_class] == [5, 5]
+    assert [entry.error_rate for entry in result.per_class] == pytest.approx([1 / 5, 1 / 5], abs=1e-12)
