@@ -275,7 +275,7 @@ def test_invalid_rows_message_shows_ten_rows_then_counts_the_rest() -> None:
     valid[[1, 3, 4, 5, 6, 7, 8, 9, 10, 11, 12, 15]] = False
     message = kernel.invalid_rows_message(valid)
     assert "row(s) 1, 3, 4, 5, 6, 7, 8, 9, 10, 11 and 2 more (0-based)" in message
-    assert "row(s) 3, 5, 6, 7, 8, 9, 10, 11, 12, 13 and 2 more (2-based)" in kernel.invalid_rows_message(valid, 2)
+    assert "row(s) 3, 5, 6, 7, 8, 9, 10, 11, 12, 13 and 2 more (1-based)" in kernel.invalid_rows_message(valid, 2)
     exactly_ten = valid.copy()
     exactly_ten[[12, 15]] = True
     assert "11 (0-based)" in kernel.invalid_rows_message(exactly_ten)
