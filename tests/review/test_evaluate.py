@@ -288,6 +288,7 @@ def test_evaluate_report_lists_the_limits(tmp_path: Path) -> None:
     text = CliRunner().invoke(main, ["evaluate", str(R6), str(HOLDOUT), "--label", "grade"]).stdout
     assert "operating limits on this data" in text and "at most 5.00% get hold_for_inspector" in text
 
+
 def test_curve_points_off_the_own_cost_are_hand_computed(hand: tuple[Path, Path]) -> None:
     # Chow's rule at cost c: accept argmin R(a|x) when min_a R(a|x) <= c. Plain-action minimum risks of the
     # eight rows, min(10q, 1 - q): 0.1, 0.5, 0.9, 0.85, 0.5, 0.1, 0.2, 0.7 (hand-computed).

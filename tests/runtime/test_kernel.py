@@ -16,8 +16,6 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.stats import multivariate_normal
 
-from policyc.runtime import InputError, Rule, kernel
-
 from policyc.runtime import ArtefactError, InputError, Rule, kernel
 
 FORMS = {"full": 0.0, "tied": 1.0, "diagonal": 2.0}
@@ -163,6 +161,7 @@ def test_float32_agrees_with_float64_to_its_precision(covariance: str) -> None:
 def test_only_float32_and_float64_kernels_exist(dtype: object) -> None:
     with pytest.raises(InputError, match="dtype must be float32 or float64"):
         random_rule(13, "full").astype(dtype)  # type: ignore[arg-type]
+
 
 # --- the kernel at its edges ------------------------------------------------------------------------
 
