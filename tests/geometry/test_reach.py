@@ -301,3 +301,11 @@ def test_a_lead_counts_as_a_win_only_above_1e_9_of_the_largest_loss(scale: float
     loss = np.array([[0.0, 1.0, 1.0], [1.0, 0.0, 1.0], [0.5 - lead, 0.5 - lead, 1.0]]) * scale
     assert margin_tolerance(loss) == pytest.approx(1e-9 * scale, rel=1e-12)
     assert unreachable(loss) == ([] if reachable else [("loss", "a2")])
+
+
+def test_a_lead_below_the_tolerance_at_the_centre_is_not_a_win() -> None:
+    # Two classes: the constant action ½ - 0.75e-9 leads the 0-1 actions by 0.75e-9 at the centre (½, ½), its best
+    # point, which is below the tie tolerance 1e-9: a tie, whichever witness posteriors are tried first.
+    loss = np.array([[0.0, 1.0], [1.0, 0.0], [0.5 - 0.75e-9, 0.5 - 0.75e-9]])
+    assert not wins_somewhere(loss, 2, margin_tolerance(loss))
+    assert winning_margin(loss, 2)[0] == pytest.approx(0.75e-9, abs=1e-12)
