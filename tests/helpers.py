@@ -52,6 +52,7 @@ def policy_text(
     reject_action: str = "reject",
     invalid_input: str = "error",
     name: str = "test-policy",
+    novelty_coverage: float | None = None,
 ) -> str:
     """YAML text of a policy; ``loss`` has shape (len(actions), len(classes)), rows are actions."""
     loss = np.asarray(loss, dtype=float)
@@ -72,7 +73,10 @@ def policy_text(
         f"evidence: {json.dumps(evidence)}",
     ]
     if reject_cost is not None:
-        lines.append(f"reject: {json.dumps({'action': reject_action, 'cost': float(reject_cost)})}")
+        reject: dict[str, Any] = {"action": reject_action, "cost": float(reject_cost)}
+        if novelty_coverage is not None:
+            reject["novelty"] = {"coverage": novelty_coverage}
+        lines.append(f"reject: {json.dumps(reject)}")
     return "\n".join(lines) + "\n"
 
 
@@ -113,6 +117,7 @@ def gaussian_rule(
     reject_cost: float | None = None,
     invalid_input: str | None = None,
     covariance: str = "full",
+    novelty_coverage: float | None = None,
 ) -> Rule:
     """A Gaussian-evidence Rule from exact parameters (nothing fitted).
 
@@ -142,6 +147,7 @@ def gaussian_rule(
         reject_cost=reject_cost,
         invalid_input=invalid_input,
         name="gaussian-test",
+        novelty_coverage=novelty_coverage,
     )
     document = parse_source(text, "policy.yaml")
     policy = build_policy(document)

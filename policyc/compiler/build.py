@@ -7,6 +7,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+from scipy import stats
 
 from policyc import __version__
 from policyc.compiler.limits import (
@@ -16,7 +17,7 @@ from policyc.compiler.limits import (
     read_reference,
     solve_limits,
 )
-from policyc.compiler.manifest import LimitsRecord, RuleManifest
+from policyc.compiler.manifest import LimitsRecord, NoveltyRecord, RuleManifest
 from policyc.errors import DataError, FitProblem
 from policyc.evidence import FittedEvidence, PartitionRunner, Progress, fit_evidence
 from policyc.evidence.calibration import brier_score, expected_calibration_error, log_loss
@@ -135,10 +136,23 @@ def rule_from_parts(
     fitted = _with_calibration_scores(fitted)
     params = {"log_priors": log_priors, "loss": loss, **fitted.params}
     record = LimitsRecord(**limits.manifest_entry(actions, policy.classes)) if limits is not None else None
-    manifest = _manifest(policy, fitted, priors, actions, policy_sha256, record)
+    novelty = _novelty(policy, len(fitted.features))
+    if novelty is not None:
+        params["novelty_threshold"] = np.array(novelty.threshold)
+    manifest = _manifest(policy, fitted, priors, actions, policy_sha256, record, novelty)
     # Round-trip through the artefact encoding: the in-memory rule is exactly the one a file holds.
     encoded_manifest, encoded_params = decode_rule(encode_rule(manifest, params), origin=policy.policy)
     return Rule(encoded_manifest, encoded_params, origin=policy.policy)
+
+
+def _novelty(policy: Policy, n_features: int) -> NoveltyRecord | None:
+    """The novelty threshold χ²_d⁻¹(coverage): D² of a row drawn from N(μ_k, Σ_k) is χ²_d distributed, so it
+    exceeds the threshold with probability 1 − coverage (Mardia, Kent & Bibby 1979, §2.5; references.md NOV-2)."""
+    if policy.reject is None or policy.reject.novelty is None:
+        return None
+    coverage = policy.reject.novelty.coverage
+    threshold = float(stats.chi2.ppf(coverage, n_features))
+    return NoveltyRecord(coverage=coverage, degrees_of_freedom=n_features, threshold=threshold)
 
 
 def _with_calibration_scores(fitted: FittedEvidence) -> FittedEvidence:
@@ -180,6 +194,7 @@ def _manifest(
     actions: list[str],
     policy_sha256: str,
     limits: LimitsRecord | None,
+    novelty: NoveltyRecord | None = None,
 ) -> dict[str, Any]:
     counts = fitted.training_counts
     manifest = RuleManifest(
@@ -207,7 +222,13 @@ def _manifest(
         training_sha256=fitted.training_sha256,
         policyc_version=__version__,
         limits=limits,
+        novelty=novelty,
     )
     # a rule without limits keeps the manifest (and content hash) it had before limits existed
-    omitted = {"arrays", "content_sha256", *(() if limits is not None else ("limits",))}
+    omitted = {
+        "arrays",
+        "content_sha256",
+        *(() if limits is not None else ("limits",)),
+        *(() if novelty is not None else ("novelty",)),
+    }
     return manifest.model_dump(mode="json", exclude_none=False, exclude=omitted)

@@ -161,6 +161,7 @@ class ReferenceSample:
     sha256: str
     posteriors: np.ndarray  # (n, K); NaN on invalid rows
     valid: np.ndarray  # (n,) bool
+    novel: np.ndarray  # (n,) bool: deferred as novelty whatever the multipliers
     codes: np.ndarray | None  # (n,) class index of each row's label, when a label column is given
 
     @property
@@ -184,7 +185,7 @@ def read_reference(
     digest = file_sha256(path)
     if limits.sha256 is not None and digest != limits.sha256:
         raise DataError(f"{path}: sha256 {digest}, not the pinned value")
-    posteriors, valid, codes = [], [], []
+    posteriors, valid, novel, codes = [], [], [], []
     for batch in read_feature_batches(path, rule.features, label=limits.label, classes=rule.classes):
         assessment = rule.assess(batch.features)
         if rule.invalid_input == "error" and not assessment.valid.all():
@@ -197,6 +198,7 @@ def read_reference(
             codes.append(batch_codes)
         posteriors.append(assessment.posteriors)
         valid.append(assessment.valid)
+        novel.append(assessment.reason == "novelty")
         if progress is not None:
             progress(batch.features.shape[0], None, "reference data")
     if not posteriors:
@@ -206,6 +208,7 @@ def read_reference(
         digest,
         np.concatenate(posteriors),
         np.concatenate(valid),
+        np.concatenate(novel),
         np.concatenate(codes) if codes else None,
     )
 
@@ -223,8 +226,9 @@ def _risks(sample: ReferenceSample, loss: np.ndarray) -> np.ndarray:
 
 
 def _decisions(sample: ReferenceSample, loss: np.ndarray) -> np.ndarray:
-    """The runtime's choice per row: argmin of the risks, ties to the earlier action, invalid rows to the last."""
-    return kernel.choose(_risks(sample, loss), sample.valid, loss.shape[0] - 1)
+    """The runtime's choice per row: argmin of the risks, ties to the earlier action, invalid and novel rows to
+    the last."""
+    return kernel.choose(_risks(sample, loss), sample.valid, loss.shape[0] - 1, sample.novel)
 
 
 def _judged(limit: Limit, sample: ReferenceSample) -> np.ndarray:
@@ -254,7 +258,7 @@ def allowed_wrong_rows(rows: int, rate: float, delta: float) -> int:
 def _row_thresholds(limit: Limit, sample: ReferenceSample, loss: np.ndarray, margin: float) -> np.ndarray:
     """Per judged row, the multiplier at or above which it is on the right side (±inf: never moves)."""
     risks = _risks(sample, loss)
-    decided = kernel.choose(risks, sample.valid, loss.shape[0] - 1)
+    decided = kernel.choose(risks, sample.valid, loss.shape[0] - 1, sample.novel)
     counted = limit.counted
     if limit.kind == "max_share":
         others = np.where(counted[None, :], np.inf, risks).min(axis=1)
@@ -271,9 +275,9 @@ def _row_thresholds(limit: Limit, sample: ReferenceSample, loss: np.ndarray, mar
             need = np.where(moved, (listed - unlisted + margin) / np.where(moved, p_class, 1.0), 0.0)
         # P(c|x) = 0: the multiplier does not touch the row; it stays where it is
         need = np.where(moved, need, np.where(counted[decided], -np.inf, np.inf))
-    # invalid rows always go to the reject action, whatever the multipliers
+    # invalid and novel rows always go to the reject action, whatever the multipliers
     fixed = np.where(_wrong(limit, decided), np.inf, -np.inf)
-    need = np.where(sample.valid, need, fixed)
+    need = np.where(sample.valid & ~sample.novel, need, fixed)
     return need[_judged(limit, sample)]
 
 

@@ -8,7 +8,7 @@ from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field
 
-__all__ = ["LimitFigures", "LimitsRecord", "RuleManifest"]
+__all__ = ["LimitFigures", "LimitsRecord", "NoveltyRecord", "RuleManifest"]
 
 
 class LimitFigures(BaseModel):
@@ -27,6 +27,17 @@ class LimitFigures(BaseModel):
     bound: float = Field(description="one-sided Clopper-Pearson bound at per_limit_confidence: upper for max_share")
     alone_multiplier: float = Field(ge=0.0, description="the multiplier with this limit alone")
     price: float = Field(ge=0.0, description="expected loss per row, this limit alone minus no limit")
+
+
+class NoveltyRecord(BaseModel):
+    """Novelty reject: rows whose squared Mahalanobis distance to every class with a non-zero prior exceeds the
+    threshold are deferred."""
+
+    model_config = ConfigDict(frozen=True, extra="forbid")
+
+    coverage: float = Field(gt=0.0, lt=1.0, description="stated share of each fitted class inside its region")
+    degrees_of_freedom: int = Field(ge=1, description="d, the number of features")
+    threshold: float = Field(gt=0.0, description="χ²_d quantile at coverage (scipy.stats.chi2.ppf)")
 
 
 class LimitsRecord(BaseModel):
@@ -77,5 +88,6 @@ class RuleManifest(BaseModel):
     training_sha256: str | None = Field(pattern=r"^[0-9a-f]{64}$")
     policyc_version: str
     limits: LimitsRecord | None = Field(default=None, description="present when the policy states limits:")
+    novelty: NoveltyRecord | None = Field(default=None, description="present when the policy states reject.novelty")
     arrays: dict[str, list[int]] | None = Field(default=None, description="array name -> shape")
     content_sha256: str | None = Field(default=None, pattern=r"^[0-9a-f]{64}$")

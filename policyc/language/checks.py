@@ -824,6 +824,20 @@ def label_counts(path: Path, label: str) -> Counter[str]:
     return Counter(str(value) for value in column.to_pylist())
 
 
+# --- novelty reject ------------------------------------------------------------------------------
+
+
+def novelty_has_gaussian_evidence(policy: Policy, context: CheckContext) -> Iterator[Diagnostic]:
+    if policy.reject is None or policy.reject.novelty is None or isinstance(policy.evidence, GaussianEvidence):
+        return
+    yield _error(
+        "novelty-needs-gaussian",
+        f"novelty rejection measures distances to fitted Gaussian classes; evidence {policy.evidence.kind!r} has none",
+        ("reject", "novelty"),
+        "remove novelty:, or use evidence kind: gaussian",
+    )
+
+
 RULES: tuple[Rule, ...] = (
     classes_are_distinct_and_at_least_two,
     actions_are_distinct,
@@ -852,6 +866,7 @@ RULES: tuple[Rule, ...] = (
     calibration_data_is_present_and_pinned,
     calibration_file_has_the_columns,
     calibration_data_has_enough_rows,
+    novelty_has_gaussian_evidence,
 )
 
 

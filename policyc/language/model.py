@@ -33,6 +33,7 @@ __all__ = [
     "Evidence",
     "GaussianEvidence",
     "LogLikelihoodEvidence",
+    "NoveltyReject",
     "OperatingLimits",
     "Policy",
     "PosteriorEvidence",
@@ -153,12 +154,21 @@ class LogLikelihoodEvidence(_Strict):
 Evidence = Annotated[GaussianEvidence | PosteriorEvidence | LogLikelihoodEvidence, Field(discriminator="kind")]
 
 
+class NoveltyReject(_Strict):
+    """Also defer rows outside every class's high-density region (Gaussian evidence)."""
+
+    coverage: Annotated[float, Field(gt=0.0, lt=1.0, allow_inf_nan=False)] = Field(
+        description="share of each fitted class's probability inside its region; rows outside every region are deferred"
+    )
+
+
 class RejectOption(_Strict):
     """Defer to a person at a constant cost (under ``loss:``) or gain (under ``gain:``)."""
 
     action: Name = "reject"
     cost: Finite | None = None
     gain: Finite | None = None
+    novelty: NoveltyReject | None = None
 
     @model_validator(mode="after")
     def _one_value(self) -> RejectOption:
@@ -288,6 +298,7 @@ _PYDANTIC_CODES = {
     "greater_than_equal": "out-of-range",
     "less_than_equal": "out-of-range",
     "greater_than": "out-of-range",
+    "less_than": "out-of-range",
     "value_error": "invalid-value",
 }
 

@@ -14,7 +14,9 @@ Parameters arrive as a mapping of name to float64 array:
   calibration map also ``calibration_floor`` () and one of: ``calibration_inverse_temperature`` ();
   ``calibration_weights`` (K, K) and ``calibration_bias`` (K,); ``calibration_thresholds`` (M,),
   ``calibration_values`` (M,) and ``calibration_ends`` (K,) (class k's points end at ends[k]);
-* log-likelihood: nothing more.
+* log-likelihood: nothing more;
+* novelty reject (gaussian only): ``novelty_threshold`` (), the squared Mahalanobis distance beyond which a row is
+  outside a class's region.
 """
 
 from __future__ import annotations
@@ -26,9 +28,10 @@ from .inputs import InputError, feature_matrix
 CHUNK_ROWS = 4096
 """Rows evaluated at once: bounds the (rows, K*d) work array whatever the input size."""
 
-REASONS = ("min-risk", "invalid")
+REASONS = ("min-risk", "novelty", "invalid")
 """Why a row got its action: the minimum conditional risk (the reject action included, when the reject
-cost is the minimum: Chow's ambiguity reject), or invalid input sent to the reject action."""
+cost is the minimum: Chow's ambiguity reject), novelty (outside every class's region: distance reject), or
+invalid input sent to the reject action."""
 
 
 def plan(evidence: str, params: dict[str, np.ndarray], dtype: type = np.float64) -> dict[str, np.ndarray]:
@@ -49,6 +52,10 @@ def plan(evidence: str, params: dict[str, np.ndarray], dtype: type = np.float64)
     derived["loss_t_sum"] = np.hstack([loss.T, np.ones((loss.shape[1], 1))]).astype(dtype)  # [λᵀ, 1]
     if evidence == "gaussian":
         derived |= {name: array.astype(dtype) for name, array in _gaussian_plan(params).items()}
+    if "novelty_threshold" in params:
+        # novelty needs every class's distance, which the tied and diagonal score forms never compute
+        derived["augmented"] = augmented_whitening(params).astype(dtype)
+        derived["novelty_classes"] = np.isfinite(params["log_priors"])  # classes with a non-zero prior
     return derived
 
 
@@ -91,7 +98,7 @@ def evaluate(
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Posteriors, risks and validity for raw input; raise InputError on invalid rows under "error"."""
     prepared = feature_matrix(X, features)
-    posteriors, risks, valid = posteriors_and_risks(prepared, evidence, rule_plan)
+    posteriors, risks, valid, _ = posteriors_and_risks(prepared, evidence, rule_plan)
     if invalid_input == "error" and not valid.all():
         raise InputError(invalid_rows_message(valid, prepared=prepared, features=features))
     return posteriors, risks, valid
@@ -239,23 +246,25 @@ SCORES = {
 
 def posteriors_and_risks(
     X: np.ndarray, evidence: str, rule_plan: dict[str, np.ndarray]
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Posteriors (n, K), conditional risks (n, A) and a validity mask (n,) for prepared input.
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Posteriors (n, K), conditional risks (n, A), a validity mask (n,) and a novelty mask (n,) for prepared
+    input.
 
-    Rows that are not valid hold NaN. Work proceeds in chunks of CHUNK_ROWS rows, as in :func:`decide_rows`,
-    so both give the same decisions to the bit.
+    Rows that are not valid hold NaN and are never novel. Work proceeds in chunks of CHUNK_ROWS rows, as in
+    :func:`decide_rows`, so both give the same decisions to the bit.
     """
     n_rows = X.shape[0]
     posteriors = np.empty((n_rows, rule_plan["log_priors"].shape[0]), dtype=rule_plan["loss_t"].dtype)
     risks = np.empty((n_rows, rule_plan["loss_t"].shape[1]), dtype=rule_plan["loss_t"].dtype)
     valid = np.empty(n_rows, dtype=bool)
+    novel = np.empty(n_rows, dtype=bool)
     work = workspace(evidence, rule_plan, min(n_rows, CHUNK_ROWS))
     for start in range(0, n_rows, CHUNK_ROWS):
         rows = slice(start, start + CHUNK_ROWS)
-        valid[rows] = _chunk(X[rows], evidence, rule_plan, posteriors[rows], risks[rows], work)
+        valid[rows], novel[rows] = _chunk(X[rows], evidence, rule_plan, posteriors[rows], risks[rows], work)
         posteriors[rows][~valid[rows]] = np.nan
         risks[rows][~valid[rows]] = np.nan
-    return posteriors, risks, valid
+    return posteriors, risks, valid, novel
 
 
 def decide_rows(
@@ -272,9 +281,25 @@ def decide_rows(
     for start in range(0, n_rows, CHUNK_ROWS):
         rows = slice(start, start + CHUNK_ROWS)
         size = min(CHUNK_ROWS, n_rows - start)
-        valid[rows] = _chunk(X[rows], evidence, rule_plan, posteriors[:size], risks[:size], work)
-        actions[rows] = choose(risks[:size], valid[rows], invalid_action)
+        valid[rows], novel = _chunk(X[rows], evidence, rule_plan, posteriors[:size], risks[:size], work)
+        actions[rows] = choose(risks[:size], valid[rows], invalid_action, novel)
     return actions, valid
+
+
+def novel_rows(
+    X: np.ndarray, rule_plan: dict[str, np.ndarray], work: dict[str, np.ndarray] | None = None
+) -> np.ndarray:
+    """Rows outside the region of every class with a non-zero prior (distance reject, Dubuisson & Masson 1993).
+
+    The row is novel when D²_k(x) = ‖L_k⁻¹(x - μ_k)‖² > novelty_threshold = χ²_d⁻¹(coverage) for every such k
+    (:func:`squared_distances`, reusing the ``work`` buffers if given). All False when the rule has no threshold.
+    """
+    if "novelty_threshold" not in rule_plan:
+        return np.zeros(X.shape[0], dtype=bool)
+    classes = rule_plan["novelty_classes"]
+    with np.errstate(invalid="ignore", over="ignore"):
+        squared = squared_distances(X, rule_plan["centre"], rule_plan["augmented"], classes.size, work=work or None)
+        return np.asarray((squared[:, classes] > rule_plan["novelty_threshold"]).all(axis=1))
 
 
 def _chunk(
@@ -284,14 +309,16 @@ def _chunk(
     posteriors: np.ndarray,
     risks: np.ndarray,
     work: dict[str, np.ndarray],
-) -> np.ndarray:
-    """Posteriors and risks of one chunk into the given buffers; returns which rows are valid.
+) -> tuple[np.ndarray, np.ndarray]:
+    """Posteriors and risks of one chunk into the given buffers; returns which rows are valid, and which valid
+    rows are novel.
 
     A valid row's posteriors are finite; an invalid row's buffers hold arbitrary values.
     """
     dtype = rule_plan["loss_t"].dtype
+    X = X.astype(dtype, copy=False)
     with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
-        scores = SCORES[evidence](X.astype(dtype, copy=False), rule_plan, posteriors, work)
+        scores = SCORES[evidence](X, rule_plan, posteriors, work)
         # P(k|x) = exp(s_k - max_j s_j) / Σ_i exp(s_i - max_j s_j): the row max first, pairwise over columns
         top = scores[:, 0].copy()
         for k in range(1, scores.shape[1]):
@@ -306,7 +333,7 @@ def _chunk(
     constant = rule_plan["constant_rows"]
     if constant.any():
         risks[:, constant] = rule_plan["constant_costs"]
-    return valid
+    return valid, novel_rows(X, rule_plan, work) & valid
 
 
 def decide_matrix(
@@ -338,6 +365,8 @@ def decide_row(x: np.ndarray, evidence: str, rule_plan: dict[str, np.ndarray], i
         top = scores.max()  # NaN propagates (a NaN score of one class makes the row invalid, as in _chunk)
         if top - top != 0.0:  # NaN or ±inf: the row is invalid (see gaussian_scores)
             return invalid_action, False
+        if novel_rows(x[None, :], rule_plan)[0]:
+            return invalid_action, True  # the reject action, for novelty
         # R(a|x) = Σ_k λ(a|k) P(k|x) with P(k|x) = exp(s_k - max_j s_j) / Σ_i exp(s_i - max_j s_j): one product
         # with [λᵀ, 1] gives every unnormalised risk and the normaliser
         unnormalised = np.exp(scores - top) @ rule_plan["loss_t_sum"]
@@ -347,18 +376,19 @@ def decide_row(x: np.ndarray, evidence: str, rule_plan: dict[str, np.ndarray], i
     return risks.index(min(risks)), True  # the first minimum: ties go to the earlier action
 
 
-def choose(risks: np.ndarray, valid: np.ndarray, invalid_action: int) -> np.ndarray:
+def choose(risks: np.ndarray, valid: np.ndarray, reject_action: int, novel: np.ndarray) -> np.ndarray:
     """Index of the minimum-risk action per row; ties go to the earlier action.
 
     With the reject row last, argmin takes an action whenever min_a R(a|x) <= d and
-    rejects when min_a R(a|x) > d (Chow 1970). Invalid rows get ``invalid_action``.
+    rejects when min_a R(a|x) > d (Chow 1970). Invalid and novel rows get ``reject_action``.
     """
-    return np.where(valid, np.argmin(risks, axis=1), invalid_action)  # an invalid row's risks are never read
+    # an invalid row's risks are never read
+    return np.where(valid & ~novel, np.argmin(risks, axis=1), reject_action)
 
 
-def reasons(valid: np.ndarray) -> np.ndarray:
+def reasons(valid: np.ndarray, novel: np.ndarray) -> np.ndarray:
     """The reason for each row's action (an entry of REASONS), shape (n,)."""
-    return np.asarray(REASONS)[np.where(valid, 0, 1)]
+    return np.asarray(REASONS)[np.where(valid, np.where(novel, 1, 0), 2)]
 
 
 def invalid_rows_message(

@@ -63,10 +63,10 @@ def _piece_ends_valid(ends: np.ndarray, n_points: int) -> bool:
 class Explanation:
     """Per row: posteriors (n, K), risks (n, A), the chosen and runner-up actions (indices into
     ``Rule.actions`` and names), the risk margin, whether the row was valid input, and the reason for
-    the action (an entry of ``REASONS``: ``min-risk`` or ``invalid``).
+    the action (an entry of ``REASONS``: ``min-risk``, ``novelty`` or ``invalid``).
 
     ``margin = risks[runner_up] - risks[action]`` (>= 0); invalid rows hold NaN, index -1 and name None for
-    the runner-up.
+    the runner-up. A novelty-deferred row's runner-up is the action of minimum risk, its margin NaN.
     """
 
     posteriors: np.ndarray
@@ -146,6 +146,10 @@ class Rule:
             }
         elif self.evidence in ("posterior", "log-likelihood") and n_features != n_classes:
             raise ArtefactError(f"{origin}: manifest field 'features' must name one column per class")
+        if "novelty_threshold" in self.params:
+            if self.evidence != "gaussian" or self.reject_action is None:
+                raise ArtefactError(f"{origin}: array 'novelty_threshold' needs gaussian evidence and a reject action")
+            expected["novelty_threshold"] = ()
         if self.evidence == "posterior" and "calibration_floor" in self.params:
             expected |= _calibration_shapes(self.params, n_classes, origin)
         for name, shape in expected.items():
@@ -263,8 +267,8 @@ class Rule:
             return inputs.feature_matrix(X, self.features)
 
     def _explain_matrix(self, prepared: np.ndarray) -> Explanation:
-        posteriors, risks, valid = kernel.posteriors_and_risks(prepared, self.evidence, self._plan)
-        action = kernel.choose(risks, valid, len(self.actions) - 1)
+        posteriors, risks, valid, novel = kernel.posteriors_and_risks(prepared, self.evidence, self._plan)
+        action = kernel.choose(risks, valid, len(self.actions) - 1, novel)
         n_rows = risks.shape[0]
         runner_up = np.full(n_rows, -1)
         margin = np.full(n_rows, np.nan)
@@ -274,10 +278,20 @@ class Rule:
             second = np.argmin(others, axis=1)
             runner_up = np.where(valid, second, -1)
             # margin = R(runner-up|x) - R(chosen|x) >= 0
-            margin = np.where(valid, others[np.arange(n_rows), second] - risks[np.arange(n_rows), action], np.nan)
+            margin = np.where(
+                valid & ~novel, others[np.arange(n_rows), second] - risks[np.arange(n_rows), action], np.nan
+            )
         names = np.asarray([*self.actions, None], dtype=object)  # index -1 (no runner-up) names None
         return Explanation(
-            posteriors, risks, action, runner_up, margin, valid, kernel.reasons(valid), names[action], names[runner_up]
+            posteriors,
+            risks,
+            action,
+            runner_up,
+            margin,
+            valid,
+            kernel.reasons(valid, novel),
+            names[action],
+            names[runner_up],
         )
 
 

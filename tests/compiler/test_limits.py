@@ -169,7 +169,7 @@ def test_a_solved_cap_holds_and_its_multiplier_is_the_least(
     rng = np.random.default_rng(seed)
     posteriors = rng.dirichlet([0.8, 0.8, 0.8], size=800)
     stated = np.vstack([rng.uniform(0.0, 10.0, size=(3, 3)), np.full(3, 2.0)])
-    sample = ReferenceSample("r", "0" * 64, posteriors, np.ones(800, bool), None)
+    sample = ReferenceSample("r", "0" * 64, posteriors, np.ones(800, bool), np.zeros(800, bool), None)
     limit = cap_limit(action, share, 4, 3)
     solved = solve_limits(stated, [limit], sample, confidence, None)
     (outcome,) = solved.outcomes

@@ -133,7 +133,7 @@ def test_a_row_every_isotonic_map_sends_to_zero_is_invalid() -> None:
         "calibration_values": np.tile([0.0, 1.0], 3),
         "calibration_ends": np.array([2.0, 4.0, 6.0]),
     }
-    posteriors, _, valid = kernel.posteriors_and_risks(
+    posteriors, _, valid, _ = kernel.posteriors_and_risks(
         np.array([[0.4, 0.3, 0.3], [0.7, 0.2, 0.1]]), "posterior", kernel.plan("posterior", params)
     )
     assert valid.tolist() == [False, True]

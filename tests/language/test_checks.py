@@ -80,7 +80,7 @@ def test_rule_fixture(rule_name: str, case: dict[str, Any], tmp_path: Path) -> N
 def test_every_rule_has_a_fixture_file_and_every_file_names_a_rule() -> None:
     files = {path.stem for path in FIXTURES.glob("*.yaml")}
     assert files == set(RULES_BY_NAME)
-    assert len(RULES_BY_NAME) == len(RULES) == 27
+    assert len(RULES_BY_NAME) == len(RULES) == 28
 
 
 def test_every_code_the_rules_yield_has_a_fixture_case() -> None:

@@ -312,3 +312,16 @@ def test_a_quoted_number_says_unquote_it(quoted: str) -> None:
         build_policy(parse_source(text, "p.yaml"))
     (quoted_number,) = [d for d in raised.value.diagnostics if d.path == ("priors", "a")]
     assert quoted_number.code == "expected-number" and "unquote it" in quoted_number.message
+
+
+@pytest.mark.parametrize("coverage", ["0", "1", "1.5", "-0.1", ".nan"])
+def test_novelty_coverage_outside_zero_one_is_an_error(coverage: str) -> None:
+    text = BASE + f"reject:\n  action: hold\n  cost: 2.5\n  novelty: {{coverage: {coverage}}}\n"
+    codes = [code for code, line, _ in schema_errors(text) if line == 14]
+    assert codes in (["out-of-range"], ["not-finite"])
+
+
+def test_novelty_coverage_inside_zero_one_is_read() -> None:
+    policy = build(BASE + "reject: {action: hold, cost: 2.5, novelty: {coverage: 0.999}}\n")
+    assert policy.reject is not None and policy.reject.novelty is not None
+    assert policy.reject.novelty.coverage == 0.999

@@ -150,7 +150,12 @@ def test_guarantee_holds_on_new_data_where_the_naive_rule_fails_half_the_time() 
         # P(defect | x) = σ(ln(0.1/0.9) + 2x - 2)  (equal-variance Gaussians, unit variance)
         p_defect = 1.0 / (1.0 + np.exp(-(np.log(0.1 / 0.9) + 2.0 * x - 2.0)))
         sample = ReferenceSample(
-            "r.csv", "0" * 64, np.column_stack([1 - p_defect, p_defect]), np.ones(x.size, bool), labels
+            "r.csv",
+            "0" * 64,
+            np.column_stack([1 - p_defect, p_defect]),
+            np.ones(x.size, bool),
+            np.zeros(x.size, bool),
+            labels,
         )
         solved = solve_limits(stated, limits, sample, confidence, "grade")
         adjusted = solved.adjusted_loss

@@ -233,7 +233,7 @@ def test_explain_gives_a_reason_for_every_row(packhouse: Rule, incoming: np.ndar
     X[[3, 10], 0] = np.nan
     explanation = packhouse.explain(X)
     reject = packhouse.actions.index("hold_for_inspector")
-    assert set(REASONS) == {"min-risk", "invalid"}
+    assert set(REASONS) == {"min-risk", "novelty", "invalid"}
     assert explanation.reason.shape == (len(X),)
     assert set(explanation.reason.tolist()) == {"min-risk", "invalid"}
     assert np.array_equal(explanation.reason == "invalid", ~explanation.valid)
