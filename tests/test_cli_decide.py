@@ -283,7 +283,7 @@ def test_summary_counts_deferrals_by_reason(tmp_path: Path, explain: bool) -> No
     data.write_text("ll_c0,ll_c1\n-1,-9\n-1,-1\n-2,-2\nNA,-1\n", encoding="utf-8")
     result = run("decide", rule_file, data, "-o", out, *(["--explain"] if explain else []))
     assert result.exit_code == 0, result.output
-    assert "deferred to reject: 3 (min-risk 2, invalid 1)" in result.output
+    assert "deferred to reject: 3 (min-risk 2, novelty 0, invalid 1)" in result.output
     rows = read_rows(out)
     assert [r["action"] for r in rows] == ["a0", "reject", "reject", "reject"]
     if explain:

@@ -392,7 +392,7 @@ def _jump(
     direction = after - before
     adjusted = _adjusted(loss, limits, after)
     risks = _risks(sample, adjusted)
-    chosen = kernel.choose(risks, sample.valid, loss.shape[0] - 1)
+    chosen = kernel.choose(risks, sample.valid, loss.shape[0] - 1, sample.novel)
     rows = np.arange(sample.rows)
     posteriors = np.where(sample.valid[:, None], sample.posteriors, 0.0)
     slopes = posteriors @ _adjusted(np.zeros_like(loss), limits, direction).T
@@ -400,7 +400,7 @@ def _jump(
     gap = risks - risks[rows, chosen][:, None]
     with np.errstate(divide="ignore", invalid="ignore"):
         crossing = np.where(closing > 0.0, gap / closing, np.inf)
-    crossing[cycling | ~sample.valid[:, None]] = np.inf
+    crossing[cycling | ~(sample.valid & ~sample.novel)[:, None]] = np.inf  # invalid and novel rows never move
     row, action = np.unravel_index(int(np.argmin(crossing)), crossing.shape)
     if not np.isfinite(crossing[row, action]):
         moving = [limit for limit, step in zip(limits, direction, strict=True) if step > 0.0]

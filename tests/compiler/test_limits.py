@@ -208,7 +208,7 @@ def test_joint_limits_hold_or_are_refused(seed: int, cap: float, recall: float, 
     posteriors = rng.dirichlet([0.6, 0.6, 0.6], size=n)
     labels = (rng.random(n)[:, None] > np.cumsum(posteriors, axis=1)).sum(axis=1)
     stated = np.vstack([rng.uniform(0.0, 10.0, size=(3, 3)), np.full(3, 1.5)])
-    sample = ReferenceSample("r", "0" * 64, posteriors, np.ones(n, bool), labels)
+    sample = ReferenceSample("r", "0" * 64, posteriors, np.ones(n, bool), np.zeros(n, bool), labels)
     limits = [cap_limit(3, cap, 4, 3), recall_limit(2, [*listed, 3], recall, 4, 3)]
     try:
         solved = solve_limits(stated, limits, sample, 0.9, "y")

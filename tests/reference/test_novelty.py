@@ -130,3 +130,16 @@ def test_the_standalone_module_defers_the_same_rows_bit_for_bit(tmp_path: Path) 
     np.testing.assert_array_equal(module.decide(rows), decided)
     assert module.posteriors(rows).tobytes() == rule.posteriors(rows).tobytes()
     assert module.risks(rows).tobytes() == rule.risks(rows).tobytes()
+
+
+def test_every_decision_path_defers_a_novel_row(tmp_path: Path) -> None:
+    # batch decide, the one-row path, decide_one, explain and the standalone module agree on novelty
+    means, covariances = three_classes(2, 3.0)
+    rule = novelty_rule(means, covariances, 0.999)
+    far, near = np.array([40.0, -40.0]), means[0]
+    assert rule.explain(np.array([far, near])).reason.tolist() == ["novelty", "min-risk"]
+    assert rule.decide_names(np.array([far, near])).tolist()[0] == "reject"
+    assert rule.decide_names(far[None, :]).tolist() == ["reject"]
+    assert rule.decide_one({"x0": far[0], "x1": far[1]}) == "reject"
+    assert rule.decide_one({"x0": near[0], "x1": near[1]}) != "reject"
+    assert standalone(rule, tmp_path).decide(far[None, :]).tolist() == [rule.actions.index("reject")]

@@ -75,8 +75,8 @@ def test_decide_gives_exactly_the_decisions_of_the_full_computation(seed: int, c
     # decide keeps no n-long posteriors or risks; choose() on posteriors_and_risks is the full computation.
     rule = random_rule(seed % 1000, covariance)
     X = sample(rule, seed, rows)
-    posteriors, risks, valid = kernel.posteriors_and_risks(X, rule.evidence, rule._plan)
-    np.testing.assert_array_equal(rule.decide(X), kernel.choose(risks, valid, len(rule.actions) - 1))
+    posteriors, risks, valid, novel = kernel.posteriors_and_risks(X, rule.evidence, rule._plan)
+    np.testing.assert_array_equal(rule.decide(X), kernel.choose(risks, valid, len(rule.actions) - 1, novel))
     assert np.isnan(posteriors[~valid]).all() and np.isfinite(posteriors[valid]).all()
 
 
