@@ -30,6 +30,7 @@ SEASON_MIX = {"premium": 0.55, "standard": 0.35, "defect": 0.10}
 # Claims routing: an upstream fraud model trained on a balanced sample.
 FRAUD_RATE = 0.03
 SCORE_SHIFT = 2.2  # separation of the upstream model's score between the classes
+OVER_CONFIDENCE = 2.0  # the upstream model's log-odds are this many times too large (as if trained too long)
 
 
 def _fruit(rng: np.random.Generator, grade: str, n: int) -> np.ndarray:
@@ -90,9 +91,10 @@ def packhouse_reference(rng: np.random.Generator) -> None:
 def _claims(rng: np.random.Generator, n: int, fraud_rate: float) -> tuple[np.ndarray, np.ndarray]:
     fraud = rng.random(n) < fraud_rate
     score = rng.normal(np.where(fraud, SCORE_SHIFT, 0.0), 1.0)
-    # The upstream model is calibrated on a balanced sample: P_bal(fraud|s) = σ(log LR(s)).
+    # On a balanced sample the calibrated probability is P_bal(fraud|s) = σ(log LR(s)); the upstream model is
+    # over-confident and reports σ(OVER_CONFIDENCE · log LR(s)), which calibration on labelled data can undo.
     log_lr = SCORE_SHIFT * score - SCORE_SHIFT**2 / 2
-    p_fraud = 1.0 / (1.0 + np.exp(-log_lr))
+    p_fraud = 1.0 / (1.0 + np.exp(-OVER_CONFIDENCE * log_lr))
     return fraud, np.clip(p_fraud, 1e-6, 1 - 1e-6)
 
 

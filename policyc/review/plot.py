@@ -263,13 +263,16 @@ def decision_regions(
     grid = np.tile(values, (resolution * resolution, 1))
     grid[:, ix] = np.tile(xs, resolution)
     grid[:, iy] = np.repeat(ys, resolution)
-    chosen = rule.decide(grid).reshape(resolution, resolution)
+    assessment = rule.assess(grid)
+    chosen = assessment.action.reshape(resolution, resolution)
+    novel = (assessment.reason == "novelty").reshape(resolution, resolution)
     colours = _colours(rule.actions, [rule.reject_action])
     with _style():
         figure = _figure(size)
         ax = figure.add_subplot()
         _draw_regions(ax, chosen, rule.actions, colours, (*x_span, *y_span))
         extra = _draw_means(ax, rule, means[:, [ix, iy]])
+        extra += _draw_novelty_boundary(ax, xs, ys, novel)
         if overlay is not None:
             extra += _draw_points(ax, rule, *overlay)
         ax.set_xlabel(x)
@@ -278,6 +281,16 @@ def decision_regions(
         figure.suptitle(f"{_title(rule)}: decision regions over {x} and {y}\n{held}")
         _action_legend(ax, rule.actions, colours, extra)
         return _save(figure, output, size)
+
+
+def _draw_novelty_boundary(ax: Any, xs: np.ndarray, ys: np.ndarray, novel: np.ndarray) -> list[Any]:
+    """A dashed line where novelty rejection starts: rows beyond it are outside every class's region."""
+    if not novel.any() or novel.all():
+        return []
+    from matplotlib.lines import Line2D
+
+    ax.contour(xs, ys, novel.astype(float), levels=[0.5], colors="black", linestyles="--", linewidths=1.4)
+    return [Line2D([], [], color="black", linestyle="--", label="novelty boundary (beyond: deferred)")]
 
 
 def _held_text(rule: Rule, values: np.ndarray, shown: tuple[int, int], hold: Mapping[str, float]) -> str:

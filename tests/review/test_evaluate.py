@@ -237,14 +237,14 @@ def test_deferrals_are_counted_by_reason(hand: tuple[Path, Path], tmp_path: Path
         handle.write("nan,0.5,ok\n0.3,0.3,bad\n")  # NaN, and probabilities summing to 0.6: both invalid
     result = evaluate(load_rule_or_policy(policy), data, "truth")
     # hand-computed: the two rows held at q = 0.10 and 0.15 by risk, the two appended rows as invalid
-    assert result.deferred == {"min-risk": 2, "invalid": 2}
+    assert result.deferred == {"min-risk": 2, "novelty": 0, "invalid": 2}
     assert sum(result.deferred.values()) == result.rejected
     shown = CliRunner().invoke(main, ["evaluate", str(policy), str(data), "--label", "truth"])
-    assert "(hold; min-risk 2, invalid 2)" in shown.stdout
+    assert "(hold; min-risk 2, novelty 0, invalid 2)" in shown.stdout
     report = json.loads(
         CliRunner().invoke(main, ["evaluate", str(policy), str(data), "--label", "truth", "--format", "json"]).stdout
     )
-    assert report["deferred_by_reason"] == {"min-risk": 2, "invalid": 2}
+    assert report["deferred_by_reason"] == {"min-risk": 2, "novelty": 0, "invalid": 2}
 
 
 R6 = Path(__file__).resolve().parents[2] / "policies-demo" / "packhouse" / "policy-r6.yaml"

@@ -73,6 +73,8 @@ def _facts(rule: Rule) -> dict[str, _Fact]:
     facts["loss stated as"] = _Fact(manifest.get("loss_stated_as"), ("loss",))
     facts["reject.action"] = _Fact(rule.reject_action, ("reject", "action"))
     facts["reject.cost"] = _Fact(manifest.get("reject_cost"), ("reject", "cost"))
+    novelty = manifest.get("novelty") or {}
+    facts["reject.novelty.coverage"] = _Fact(novelty.get("coverage"), ("reject", "novelty", "coverage"))
     facts["invalid_input"] = _Fact(rule.invalid_input, ("invalid_input",))
     facts["loss_unit"] = _Fact(manifest.get("loss_unit"), ("loss_unit",))
     facts |= _evidence_facts(dict(manifest["evidence"]), "evidence", ("evidence",))
