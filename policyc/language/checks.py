@@ -780,13 +780,15 @@ def calibration_data_has_enough_rows(policy: Policy, context: CheckContext) -> I
         return
     fit = evidence.calibrate
     path = context.resolve(fit.data)
-    if not path.is_file():
-        return  # reported by calibration_data_is_present_and_pinned
     try:
-        counts = label_counts(path, fit.label)
+        counts = label_counts(path, fit.label) if path.is_file() else None
+    except OSError:  # a name too long for the file system, no permission, ...
+        counts = None
     except ValueError as error:
         yield _error("calibration-data-unusable", str(error), ("evidence", "calibrate", "data"))
         return
+    if counts is None:
+        return  # reported by calibration_data_is_present_and_pinned
     needed = fit.minimum_rows_per_class(len(policy.classes))
     for name in policy.classes:
         if counts[name] < needed:
