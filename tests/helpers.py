@@ -163,6 +163,15 @@ def random_spd(rng: np.random.Generator, d: int, low: float = 0.3, high: float =
     return 0.5 * (matrix + matrix.T)
 
 
+def random_covariances(rng: np.random.Generator, n_classes: int, dim: int, covariance: str) -> np.ndarray:
+    """(K, d, d) covariances of the given structure: one shared SPD matrix (tied), diagonals, or K SPD matrices."""
+    if covariance == "tied":
+        return np.array([random_spd(rng, dim)] * n_classes)
+    if covariance == "diagonal":
+        return np.array([np.diag(rng.uniform(0.3, 3.0, dim)) for _ in range(n_classes)])
+    return np.array([random_spd(rng, dim) for _ in range(n_classes)])
+
+
 def import_module_from(path: Path, name: str) -> ModuleType:
     """Import a generated module from a file under a unique name."""
     spec = importlib.util.spec_from_file_location(name, path)

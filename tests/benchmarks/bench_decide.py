@@ -46,7 +46,7 @@ from threadpoolctl import threadpool_info, threadpool_limits
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))  # tests/helpers.py builds rules from parameters
 
-from helpers import gaussian_rule, random_spd
+from helpers import gaussian_rule, random_covariances
 
 from policyc.runtime import Rule, kernel
 
@@ -66,12 +66,7 @@ class Figure:
 def shape_rule(rng: np.random.Generator, n_classes: int, dim: int, covariance: str) -> tuple[Rule, np.ndarray]:
     """A rule of the given shape (reject option included) and its exact class means (for sampling)."""
     means = rng.normal(scale=1.5, size=(n_classes, dim))
-    if covariance == "tied":
-        covariances = np.array([random_spd(rng, dim)] * n_classes)
-    elif covariance == "diagonal":
-        covariances = np.array([np.diag(rng.uniform(0.3, 3.0, dim)) for _ in range(n_classes)])
-    else:
-        covariances = np.array([random_spd(rng, dim) for _ in range(n_classes)])
+    covariances = random_covariances(rng, n_classes, dim, covariance)
     loss = rng.uniform(1.0, 10.0, size=(n_classes, n_classes))
     np.fill_diagonal(loss, 0.0)
     rule = gaussian_rule(means, covariances, np.full(n_classes, 1 / n_classes), loss, 2.0, covariance=covariance)

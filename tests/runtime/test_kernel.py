@@ -11,7 +11,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import scipy.special
-from helpers import gaussian_rule, loglik_evidence, policy_text, posterior_evidence, random_spd, rule_from_text
+from helpers import gaussian_rule, loglik_evidence, policy_text, posterior_evidence, random_covariances, rule_from_text
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.stats import multivariate_normal
@@ -24,12 +24,7 @@ FORMS = {"full": 0.0, "tied": 1.0, "diagonal": 2.0}
 def random_rule(seed: int, covariance: str, n_classes: int = 4, dim: int = 5, reject: bool = True) -> Rule:
     rng = np.random.default_rng(seed)
     means = rng.normal(scale=2.0, size=(n_classes, dim))
-    if covariance == "tied":
-        covariances = np.array([random_spd(rng, dim)] * n_classes)
-    elif covariance == "diagonal":
-        covariances = np.array([np.diag(rng.uniform(0.3, 3.0, dim)) for _ in range(n_classes)])
-    else:
-        covariances = np.array([random_spd(rng, dim) for _ in range(n_classes)])
+    covariances = random_covariances(rng, n_classes, dim, covariance)
     loss = rng.uniform(0.0, 10.0, size=(n_classes + 1, n_classes))
     np.fill_diagonal(loss, 0.0)
     priors = rng.dirichlet(np.ones(n_classes))
