@@ -200,12 +200,14 @@ class Rule:
         for :meth:`posteriors`."""
         return self._evaluate(X)[1]
 
-    def decide(self, X: object, *, threads: int | None = None) -> np.ndarray:
+    def decide(self, X: object, *, threads: int = 1) -> np.ndarray:
         """Index into ``actions`` of the minimum-risk action per row, shape (n,); input as for
         :meth:`posteriors`.
 
-        ``threads``: how many threads share a large batch (None: one per core, up to ``MAX_THREADS``, for
-        batches of at least ``PARALLEL_MIN_ROWS`` rows); the decisions do not depend on it.
+        ``threads``: how many threads share a batch of at least ``PARALLEL_MIN_ROWS`` rows, each taking whole
+        chunks, so the decisions do not depend on it. The default 1 already uses every core in numpy's BLAS
+        products; more threads pay off when BLAS is pinned to one thread (threadpoolctl), see
+        tests/benchmarks/bench_decide.py.
         """
         try:  # not _input_refusals: a context manager costs a microsecond here, a third of a one-row decision
             prepared = inputs.feature_matrix(X, self.features)
@@ -221,7 +223,7 @@ class Rule:
         never raise (they get the reject action, or index ``len(actions) - 1``). Input as for :meth:`decide`."""
         with _input_refusals():
             prepared = inputs.feature_matrix(X, self.features)
-        return _decide_in_parallel(prepared, self.evidence, self._plan, len(self.actions) - 1, None)
+        return _decide_in_parallel(prepared, self.evidence, self._plan, len(self.actions) - 1, 1)
 
     def decide_names(self, X: object) -> np.ndarray:
         return np.asarray(self.actions, dtype=object)[self.decide(X)]
@@ -304,24 +306,19 @@ def _input_refusals() -> Iterator[None]:
         raise _runtime_input_error(exc) from None
 
 
-MAX_THREADS = 2
-"""Threads a large batch is split over by default (the kernels release the GIL in numpy)."""
-
 PARALLEL_MIN_ROWS = 16 * kernel.CHUNK_ROWS
 """Smaller batches run on the calling thread: starting threads would cost more than it saves."""
 
 
 def _decide_in_parallel(
-    prepared: np.ndarray, evidence: str, plan: dict[str, np.ndarray], invalid_action: int, threads: int | None
+    prepared: np.ndarray, evidence: str, plan: dict[str, np.ndarray], invalid_action: int, threads: int
 ) -> tuple[np.ndarray, np.ndarray]:
     """kernel.decide_matrix over blocks of whole chunks on a thread pool: the same chunks, so the same bits."""
     n_rows = prepared.shape[0]
-    if threads is None:
-        threads = min(os.cpu_count() or 1, MAX_THREADS) if n_rows >= PARALLEL_MIN_ROWS else 1
-    if threads < 1:
-        raise InputError(f"threads must be a positive number, got {threads}")
+    if not isinstance(threads, int) or threads < 1:
+        raise InputError(f"threads must be a positive number, got {threads!r}")
     chunks = -(-n_rows // kernel.CHUNK_ROWS)  # ⌈n / CHUNK_ROWS⌉
-    if threads == 1 or chunks < 2:
+    if threads == 1 or n_rows < PARALLEL_MIN_ROWS:
         return kernel.decide_matrix(prepared, evidence, plan, invalid_action)
     step = -(-chunks // threads) * kernel.CHUNK_ROWS  # whole chunks per block
     actions = np.empty(n_rows, dtype=np.intp)

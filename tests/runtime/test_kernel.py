@@ -17,6 +17,7 @@ from hypothesis import strategies as st
 from scipy.stats import multivariate_normal
 
 from policyc.runtime import ArtefactError, InputError, Rule, kernel
+from policyc.runtime.rule import PARALLEL_MIN_ROWS
 
 FORMS = {"full": 0.0, "tied": 1.0, "diagonal": 2.0}
 
@@ -126,7 +127,7 @@ def test_far_rows_never_give_nan_posteriors(covariance: str) -> None:
 @pytest.mark.parametrize("threads", [2, 3])
 def test_threads_split_whole_chunks_and_give_the_same_bits(threads: int) -> None:
     rule = random_rule(13, "full")
-    X = sample(rule, 14, 5 * kernel.CHUNK_ROWS + 17)
+    X = sample(rule, 14, PARALLEL_MIN_ROWS + 3 * kernel.CHUNK_ROWS + 17)  # the pool starts at PARALLEL_MIN_ROWS
     np.testing.assert_array_equal(rule.decide(X, threads=threads), rule.decide(X, threads=1))
 
 
