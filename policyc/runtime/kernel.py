@@ -88,7 +88,6 @@ def _gaussian_plan(params: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
         "form": np.array(0.0),
         "augmented": augmented_whitening(params),
         "whitening_t": np.ascontiguousarray(params["whitening"].T),  # (d, K·d), for one row at a time
-        "block_sums": -0.5 * np.kron(np.eye(n_classes), np.ones((n_features, 1))),  # (K·d, K): -½ Σ over each block
         "offset": constant,
     }
 
@@ -358,7 +357,10 @@ def decide_row(x: np.ndarray, evidence: str, rule_plan: dict[str, np.ndarray], i
             z = (x - rule_plan["centre"]) @ rule_plan["whitening_t"]
             z -= rule_plan["whitened_means"]
             z *= z
-            scores = z @ rule_plan["block_sums"]  # -½‖z_k‖² per class
+            # -½‖z_k‖² per class, summed within each class's block: a product with a block matrix would add
+            # 0·inf = NaN to every class when one class's distance overflows, where the batch path drops that class
+            scores = z.reshape(rule_plan["offset"].shape[0], -1).sum(axis=1)
+            scores *= -0.5
             scores += rule_plan["offset"]
         else:
             scores = SCORES[evidence](x[None, :], rule_plan, np.empty((1, rule_plan["loss_t"].shape[0])), {})[0]

@@ -287,3 +287,15 @@ def test_invalid_input_error_names_rows_and_columns() -> None:
     rule = loglik_rule(ZERO_ONE_3, None)
     with pytest.raises(InputError, match=r"row\(s\) 1 \(0-based\).*\(row 1: 'll_c1'\)"):
         rule.decide(np.array([[0.0, 0.0, 0.0], [0.0, np.nan, 0.0]]))
+
+
+@pytest.mark.parametrize("value", [5.1e154, -3e154, 1e160, 1e300])
+def test_one_row_far_enough_to_overflow_some_classes_decides_as_the_batch(value: float) -> None:
+    # |z_k| beyond ~1.3e154 overflows ‖z_k‖² to inf for some classes only: those classes get probability 0 in
+    # both paths (a one-row product with a block matrix would have made every score NaN, and the row invalid)
+    rule = random_rule(19, "full")
+    row = np.zeros((1, len(rule.features)))
+    row[0, 0] = value
+    batch = rule.explain(np.vstack([row, row]))
+    assert rule.decide(row)[0] == batch.action[0]
+    assert rule.explain(row).valid[0] == batch.valid[0]
