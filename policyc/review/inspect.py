@@ -51,6 +51,7 @@ class Inspection:
     loss: dict[str, dict[str, float]]
     posterior_intervals: tuple[PosteriorInterval, ...] | None  # two classes only
     limits: dict[str, Any] | None = None  # the manifest's record of solved operating limits (loss is then L')
+    novelty: dict[str, Any] | None = None  # coverage, degrees of freedom and χ² threshold of the novelty reject
 
 
 _FACTS = (
@@ -93,6 +94,7 @@ def inspection(rule: Rule) -> Inspection:
         },
         posterior_intervals=intervals,
         limits=manifest.get("limits"),
+        novelty=manifest.get("novelty"),
     )
 
 
@@ -111,6 +113,13 @@ def render_inspection(rule: Rule, report: Inspection) -> str:
         lines.append(f"\ndecision by P({rule.classes[1]} | x):")
         for interval in report.posterior_intervals:
             lines.append(f"  [{interval.low:.6g}, {interval.high:.6g}]: {interval.action}")
+    if report.novelty is not None:
+        novelty = report.novelty
+        lines.append(
+            f"\nnovelty reject: a row whose squared Mahalanobis distance to every class with a non-zero prior exceeds "
+            f"{novelty['threshold']:.6g} (the χ² quantile at coverage {novelty['coverage']:g}, "
+            f"{novelty['degrees_of_freedom']} degrees of freedom) goes to {report.reject_action} with reason novelty"
+        )
     if report.limits is not None:
         stated = np.array([[report.limits["stated_loss"][a][c] for c in rule.classes] for a in rule.actions])
         lines.append(f"\nstated loss{unit}, before the limits:")

@@ -201,3 +201,22 @@ def test_module_source_is_deterministic_and_names_the_rule(packhouse: Rule) -> N
     assert source == module_source(compile_policy(PACKHOUSE).rule)
     assert packhouse.content_sha256 in source
     assert "hold_for_inspector" in source
+
+
+@pytest.mark.parametrize("path", sorted(DEMOS.glob("*/policy*.yaml")), ids=lambda p: f"{p.parent.name}/{p.stem}")
+def test_every_demo_revision_module_is_bit_identical(path: Path, tmp_path: Path) -> None:
+    # every revision, calibration (claims r2), novelty (packhouse r5) and limits (packhouse r6) included, on the
+    # demo's own tables and on rows far from every class (novelty deferrals) and invalid rows
+    rule = compile_policy(path).rule
+    module = standalone(rule, tmp_path)
+    for csv in sorted(path.parent.glob("*.csv")):
+        X = read_csv_columns(csv, rule.features) if _has_columns(csv, rule.features) else None
+        if X is not None:
+            assert_bit_identical(rule, module, X)
+    far = np.full((4, len(rule.features)), 0.5) * np.array([[1.0], [40.0], [-40.0], [400.0]])
+    assert_bit_identical(rule, module, np.vstack([far, with_invalid_rows(np.vstack([far] * 3))]))
+
+
+def _has_columns(csv: Path, columns: tuple[str, ...]) -> bool:
+    header = csv.read_text(encoding="utf-8").splitlines()[0].split(",")
+    return set(columns) <= set(header)
