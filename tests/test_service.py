@@ -30,6 +30,7 @@ import httpx
 import numpy as np
 import pytest
 import uvicorn
+from helpers import read_csv_columns
 
 from policyc.compiler.artefact import write_artefact
 from policyc.compiler.build import compile_policy
@@ -587,3 +588,16 @@ def test_service_imports_the_runtime_only() -> None:
     result = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, timeout=30, check=True)
     loaded = json.loads(result.stdout)
     assert all(name == "policyc" or name.startswith("policyc.runtime") for name in loaded), loaded
+
+
+def test_explanations_say_why_a_row_was_deferred_novelty_included() -> None:
+    # packhouse r5 defers rows outside every class's 99.9% region (reason novelty); NaN rows are invalid
+    app = _load_service_module()
+    rule = compile_policy(PACKHOUSE / "policy-r5.yaml").rule
+    far = np.full((2, len(rule.features)), 400.0)
+    far[1, 0] = np.nan
+    near = read_csv_columns(PACKHOUSE / "incoming.csv", rule.features)[:3]
+    explanations = app._explanations(rule, rule.assess(np.vstack([near, far])))
+    assert [e["reason"] for e in explanations[3:]] == ["novelty", "invalid"]
+    assert {e["reason"] for e in explanations[:3]} <= {"min-risk", "novelty"}
+    assert explanations[3]["valid"] is True and explanations[4]["valid"] is False

@@ -432,14 +432,25 @@ def _explanations(rule: Rule, explanation: Explanation) -> list[dict[str, Any]]:
     risks = explanation.risks.tolist()
     runner_up = explanation.runner_up.tolist()
     margin = explanation.margin.tolist()
+    reasons = explanation.reason.tolist()  # min-risk, novelty or invalid: every deferral says why
     out = []
     for i, valid in enumerate(explanation.valid.tolist()):
         if not valid:  # sent to the reject action under invalid_input: reject; nothing finite to show
-            out.append({"valid": False, "posteriors": None, "risks": None, "runner_up": None, "margin": None})
+            out.append(
+                {
+                    "valid": False,
+                    "reason": reasons[i],
+                    "posteriors": None,
+                    "risks": None,
+                    "runner_up": None,
+                    "margin": None,
+                }
+            )
             continue
         out.append(
             {
                 "valid": True,
+                "reason": reasons[i],
                 "posteriors": dict(zip(rule.classes, posteriors[i], strict=True)),
                 "risks": dict(zip(rule.actions, risks[i], strict=True)),
                 "runner_up": rule.actions[runner_up[i]] if runner_up[i] >= 0 else None,
