@@ -31,7 +31,7 @@ import subprocess
 import sys
 import tempfile
 import time
-from dataclasses import asdict, dataclass
+from dataclasses import asdict
 from pathlib import Path
 from typing import Any
 
@@ -39,21 +39,10 @@ HERE = Path(__file__).resolve().parent
 ROOT = HERE.parents[1]
 sys.path.insert(0, str(HERE))
 import bench_startup  # noqa: E402  (a sibling script, not a package)
+from bench_decide import Figure, render  # noqa: E402  (one table format for every figure)
 
 RUNTIME_START_TARGET_S = 0.030
 CORETYPE = "OPENBLAS_CORETYPE"
-
-
-@dataclass(frozen=True)
-class Row:
-    """One line of the table (the fields of ``bench_decide.Figure``)."""
-
-    name: str
-    policyc: str
-    reference: str
-    ratio: float | None
-    target: str
-    met: bool | None
 
 
 def run_json(script: str, *arguments: str, environment: dict[str, str] | None = None) -> Any:
@@ -65,15 +54,15 @@ def run_json(script: str, *arguments: str, environment: dict[str, str] | None = 
     return json.loads(done.stdout.strip().splitlines()[-1])
 
 
-def kernel_rows(quick: bool, environment: dict[str, str] | None, suffix: str) -> list[Row]:
+def kernel_rows(quick: bool, environment: dict[str, str] | None, suffix: str) -> list[Figure]:
     figures = run_json("bench_decide.py", *(["--quick"] if quick else []), environment=environment)
-    return [Row(**{**figure, "name": figure["name"] + suffix}) for figure in figures]
+    return [Figure(**{**figure, "name": figure["name"] + suffix}) for figure in figures]
 
 
-def fit_rows(rows: int) -> list[Row]:
+def fit_rows(rows: int) -> list[Figure]:
     found = run_json("bench_fit.py", "--rows", str(rows))
     return [
-        Row(
+        Figure(
             f"fit, {int(found['rows']):,} rows, d = 32, K = 8, full (rows/s; peak {found['fit_peak_rss_mb']:.0f} MB)",
             f"{found['fit_rows_per_s'] / 1e6:.3f} M/s",
             f"{found['read_rows_per_s'] / 1e6:.3f} M/s (pyarrow read)",
@@ -84,11 +73,11 @@ def fit_rows(rows: int) -> list[Row]:
     ]
 
 
-def decide_file_rows(rows: int, rounds: int) -> list[Row]:
+def decide_file_rows(rows: int, rounds: int) -> list[Figure]:
     found = run_json("bench_decide_file.py", "--rows", str(rows), "--rounds", str(rounds))
     low, high = min(found["ratios"]), max(found["ratios"])
     return [
-        Row(
+        Figure(
             f"policyc decide, {found['rows']:,}-row Parquet (median of {rounds}, ratios {low:.2f}-{high:.2f})",
             f"{statistics.median(found['policyc_rows_per_s']) / 1e6:.3f} M/s",
             f"{statistics.median(found['reference_rows_per_s']) / 1e6:.3f} M/s (pyarrow read + write)",
@@ -96,7 +85,7 @@ def decide_file_rows(rows: int, rounds: int) -> list[Row]:
             ">= 0.8",
             found["ratio"] >= 0.8,
         ),
-        Row(
+        Figure(
             "policyc decide, peak RSS (MiB)",
             f"{found['policyc_peak_rss_mib']:.0f}",
             f"{found['reference_peak_rss_mib']:.0f}",
@@ -107,10 +96,10 @@ def decide_file_rows(rows: int, rounds: int) -> list[Row]:
     ]
 
 
-def startup_rows(runs: int) -> list[Row]:
+def startup_rows(runs: int) -> list[Figure]:
     found = bench_startup.medians(runs)
     return [
-        Row(
+        Figure(
             f"start-up, policyc {name} (median of {runs})",
             f"{found[name]:.3f} s",
             f"{found['numpy']:.3f} s (import numpy)",
@@ -122,7 +111,7 @@ def startup_rows(runs: int) -> list[Row]:
     ]
 
 
-def runtime_start_row(runs: int) -> Row:
+def runtime_start_row(runs: int) -> Figure:
     """``import policyc.runtime`` + ``load_rule`` beyond ``import numpy``, fresh interpreters, alternating."""
     with tempfile.TemporaryDirectory(prefix="policyc-bench-start-") as folder:
         rule = Path(folder) / "packhouse.rule"
@@ -141,7 +130,7 @@ def runtime_start_row(runs: int) -> Row:
                 times[name].append(time.perf_counter() - start)
     numpy_s, runtime_s = (statistics.median(times[name][1:]) for name in commands)
     extra = runtime_s - numpy_s  # start-up cost beyond numpy = median(runtime) - median(numpy)
-    return Row(
+    return Figure(
         f"start-up, import policyc.runtime + load_rule beyond numpy (median of {runs})",
         f"{extra * 1e3:.1f} ms",
         f"{numpy_s * 1e3:.0f} ms (import numpy)",
@@ -165,25 +154,6 @@ def header() -> list[str]:
         f"BLAS: {', '.join(blas) or 'none found'}; numpy {np.__version__}; cores {multiprocessing.cpu_count()}",
         f"{CORETYPE}: " + (f"{coretype!r} (kernel figures measured as set and unset)" if coretype else "not set"),
     ]
-
-
-def render(rows: list[Row]) -> str:
-    titles = ("figure", "policyc", "reference", "ratio", "target", "met")
-    cells = [titles] + [
-        (
-            row.name,
-            row.policyc,
-            row.reference,
-            "" if row.ratio is None else f"{row.ratio:.2f}",
-            row.target,
-            {True: "yes", False: "NO", None: ""}[row.met],
-        )
-        for row in rows
-    ]
-    widths = [max(len(line[i]) for line in cells) for i in range(len(titles))]
-    lines = ["  ".join(cell.ljust(width) for cell, width in zip(line, widths, strict=True)) for line in cells]
-    lines.insert(1, "  ".join("-" * width for width in widths))
-    return "\n".join(lines)
 
 
 def main(argv: list[str] | None = None) -> int:
