@@ -38,30 +38,17 @@ N_FEATURES = 8
 FEATURES = [f"f{j}" for j in range(N_FEATURES)]
 CLASSES = [f"class_{k}" for k in range(N_CLASSES)]
 LABEL = "label"
-GENERATION_CHUNK = 250_000
 
 
 def generate(directory: Path, n_rows: int, n_files: int, seed: int = 20260514) -> None:
     """Write ``n_rows`` seeded rows split over ``n_files`` files: class k is N(μ_k, D_k M) with its own scales."""
     import numpy as np
-    import pyarrow as pa
-    import pyarrow.parquet as pq
+    from bench_fit import write_gaussian_parquet  # a sibling script: the same generator
 
-    rng = np.random.default_rng(seed)
-    means = rng.normal(scale=2.0, size=(N_CLASSES, N_FEATURES))
-    scales = rng.uniform(0.5, 2.0, size=(N_CLASSES, N_FEATURES))
-    mixing = rng.normal(scale=0.3, size=(N_FEATURES, N_FEATURES)) + np.eye(N_FEATURES)
-    schema = pa.schema([(name, pa.float64()) for name in FEATURES] + [(LABEL, pa.string())])
-    names = np.array(CLASSES, dtype=object)
     directory.mkdir(parents=True, exist_ok=True)
-    for index, rows in enumerate(np.array_split(np.arange(n_rows), n_files)):
-        with pq.ParquetWriter(directory / f"part-{index:03d}.parquet", schema) as writer:
-            for start in range(0, rows.size, GENERATION_CHUNK):
-                count = min(GENERATION_CHUNK, rows.size - start)
-                codes = rng.integers(0, N_CLASSES, size=count)
-                X = means[codes] + (rng.standard_normal((count, N_FEATURES)) * scales[codes]) @ mixing
-                arrays = [pa.array(X[:, j]) for j in range(N_FEATURES)] + [pa.array(names[codes], pa.string())]
-                writer.write_table(pa.Table.from_arrays(arrays, schema=schema), row_group_size=count)
+    sizes = [part.size for part in np.array_split(np.arange(n_rows), n_files)]
+    paths = [directory / f"part-{index:03d}.parquet" for index in range(n_files)]
+    write_gaussian_parquet(paths, sizes, CLASSES, FEATURES, LABEL, seed, mean_scale=2.0)
 
 
 def write_policy(directory: Path) -> Path:

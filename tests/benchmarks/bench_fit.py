@@ -43,23 +43,39 @@ PYARROW_BATCH_ROWS = 65_536  # iter_batches' default batch_size
 
 def generate(path: Path, n_rows: int, seed: int = 20240611) -> None:
     """Write ``n_rows`` seeded rows: class k is N(μ_k, D_k) with its own mean and scales."""
+    write_gaussian_parquet([path], [n_rows], CLASSES, FEATURES, LABEL, seed, mean_scale=3.0)
+
+
+def write_gaussian_parquet(
+    paths: list[Path],
+    rows_per_file: list[int],
+    classes: list[str],
+    features: list[str],
+    label: str,
+    seed: int,
+    mean_scale: float,
+) -> None:
+    """Seeded Parquet files, written in row groups so generation stays within memory: class k is
+    N(μ_k, (D_k M)ᵀ(D_k M)) with μ_k ~ N(0, mean_scale²), its own scales D_k and a shared mixing M."""
     import numpy as np
     import pyarrow as pa
     import pyarrow.parquet as pq
 
     rng = np.random.default_rng(seed)
-    means = rng.normal(scale=3.0, size=(N_CLASSES, N_FEATURES))
-    scales = rng.uniform(0.5, 2.0, size=(N_CLASSES, N_FEATURES))
-    mixing = rng.normal(scale=0.3, size=(N_FEATURES, N_FEATURES)) + np.eye(N_FEATURES)
-    schema = pa.schema([(name, pa.float64()) for name in FEATURES] + [(LABEL, pa.string())])
-    names = np.array(CLASSES, dtype=object)
-    with pq.ParquetWriter(path, schema) as writer:
-        for start in range(0, n_rows, GENERATION_CHUNK):
-            count = min(GENERATION_CHUNK, n_rows - start)
-            codes = rng.integers(0, N_CLASSES, size=count)
-            X = means[codes] + (rng.standard_normal((count, N_FEATURES)) * scales[codes]) @ mixing
-            arrays = [pa.array(X[:, j]) for j in range(N_FEATURES)] + [pa.array(names[codes], pa.string())]
-            writer.write_table(pa.Table.from_arrays(arrays, schema=schema), row_group_size=count)
+    n_classes, n_features = len(classes), len(features)
+    means = rng.normal(scale=mean_scale, size=(n_classes, n_features))
+    scales = rng.uniform(0.5, 2.0, size=(n_classes, n_features))
+    mixing = rng.normal(scale=0.3, size=(n_features, n_features)) + np.eye(n_features)
+    schema = pa.schema([(name, pa.float64()) for name in features] + [(label, pa.string())])
+    names = np.array(classes, dtype=object)
+    for path, rows in zip(paths, rows_per_file, strict=True):
+        with pq.ParquetWriter(path, schema) as writer:
+            for start in range(0, rows, GENERATION_CHUNK):
+                count = min(GENERATION_CHUNK, rows - start)
+                codes = rng.integers(0, n_classes, size=count)
+                X = means[codes] + (rng.standard_normal((count, n_features)) * scales[codes]) @ mixing
+                arrays = [pa.array(X[:, j]) for j in range(n_features)] + [pa.array(names[codes], pa.string())]
+                writer.write_table(pa.Table.from_arrays(arrays, schema=schema), row_group_size=count)
 
 
 def peak_rss_mb() -> float:
