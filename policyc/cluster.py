@@ -3,7 +3,8 @@
 * :func:`connect` opens a client on a scheduler address, or on a ``LocalCluster`` it starts and stops.
 * :class:`DaskPartitions` is a :class:`~policyc.evidence.partitions.PartitionRunner`: one task per file, and
   the merge tree of :func:`~policyc.evidence.partitions.tree_reduce` built from tasks, so the workers perform
-  the same floating-point operations in the same order as one process.
+  the same floating-point operations in the same order as one process; values kept for repeated passes
+  stay in the memory of the worker that computed them.
 * :func:`decide_dataframe` decides a dask DataFrame and returns one.
 
 Only this module imports dask; the CLI imports it inside a command given ``--scheduler``.
@@ -25,7 +26,7 @@ from distributed import Client, Future, LocalCluster, as_completed
 
 from policyc.errors import PolicycError
 from policyc.evidence.base import Progress
-from policyc.evidence.partitions import Leaf, Task, tree_reduce
+from policyc.evidence.partitions import KeptPartitions, Leaf, Task, tree_reduce
 from policyc.runtime import InputError, Rule, rule_from_bytes
 
 __all__ = ["ClusterError", "DaskPartitions", "connect", "decide_dataframe"]
@@ -33,6 +34,8 @@ __all__ = ["ClusterError", "DaskPartitions", "connect", "decide_dataframe"]
 T = TypeVar("T")
 S = TypeVar("S")
 I = TypeVar("I")  # noqa: E741
+A = TypeVar("A")
+R = TypeVar("R")
 
 CONNECT_TIMEOUT_SECONDS = 30
 
@@ -112,6 +115,15 @@ class DaskPartitions:
         self._follow(futures, len(futures))
         return list(self.client.gather(futures))
 
+    @contextmanager
+    def keep(self, leaf: Leaf[T], files: Sequence[Path]) -> Iterator[KeptPartitions[T]]:
+        futures = self.client.map(leaf, [str(path) for path in files], [None] * len(files), pure=False)
+        try:
+            self._follow(futures, len(futures))
+            yield KeptOnWorkers(self.client, futures)
+        finally:
+            self.client.cancel(futures)  # the workers drop the values
+
     def _follow(self, futures: list[Future[Any]], total: int | None) -> None:
         """Wait for every task, reporting ``progress(1, total)`` per task; the first failed task's error is
         raised here and the other tasks are cancelled."""
@@ -123,6 +135,20 @@ class DaskPartitions:
         except BaseException:
             self.client.cancel(futures)
             raise
+
+
+class KeptOnWorkers:
+    """Partition values held by the workers that computed them (a worker lost with its values recomputes
+    them elsewhere, the same bits). A pass sends each value's worker one task with a small argument and
+    gathers the small results; they are merged here, in :func:`tree_reduce`'s order."""
+
+    def __init__(self, client: Client, futures: list[Future[Any]]) -> None:
+        self.client, self.futures = client, futures
+
+    def reduce(self, task: Callable[[Any, A], R], argument: A, combine: Callable[[R, R], R]) -> R:
+        count = len(self.futures)
+        results = self.client.map(task, self.futures, [argument] * count, pure=False)
+        return tree_reduce(self.client.gather(results), combine)
 
 
 @lru_cache(maxsize=4)

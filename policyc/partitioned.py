@@ -18,7 +18,7 @@ from pathlib import Path
 
 from policyc.batch import DecisionCounts, decide_file
 from policyc.evidence.base import Progress
-from policyc.evidence.io import DataError, count_rows, data_file_list
+from policyc.evidence.io import DataError, data_file_list, expected_rows
 from policyc.evidence.partitions import PartitionRunner, SerialPartitions
 from policyc.runtime import Rule, rule_from_bytes
 
@@ -85,8 +85,7 @@ def decide_partitions(
     Temporary files that a killed worker left beside an output are removed once every partition is done.
     """
     if runner is None:
-        counts = [count_rows(Path(p.data)) for p in partitions]
-        runner = SerialPartitions(progress, None if None in counts else sum(c for c in counts if c is not None))
+        runner = SerialPartitions(progress, expected_rows([Path(p.data) for p in partitions]))
     for output_directory in sorted({Path(p.output).parent for p in partitions}):
         output_directory.mkdir(parents=True, exist_ok=True)  # -o names a directory to fill, made if need be
     per_partition = runner.map(decide_partition, settings, partitions)

@@ -23,8 +23,8 @@ from scipy.linalg import solve_triangular
 
 from policyc.errors import FitProblem
 from policyc.evidence.base import FittedEvidence, Progress
-from policyc.evidence.io import count_rows, data_file_list, read_feature_batches
-from policyc.evidence.partitions import PartitionRunner, SerialPartitions
+from policyc.evidence.io import data_file_list, expected_rows, read_feature_batches
+from policyc.evidence.partitions import PartitionRunner, SerialPartitions, add_sums
 from policyc.files import data_sha256
 from policyc.language.model import GaussianEvidence, Policy
 
@@ -35,7 +35,6 @@ __all__ = [
     "GaussianFit",
     "Moments",
     "TrainingColumns",
-    "add_sums",
     "class_moments_of_file",
     "fit",
     "fit_covariances",
@@ -301,11 +300,6 @@ def merge_class_moments(first: list[Moments], second: list[Moments]) -> list[Mom
     return [a.merge(b) for a, b in zip(first, second, strict=True)]
 
 
-def add_sums(first: np.ndarray, second: np.ndarray) -> np.ndarray:
-    """Σ over the union = Σ over the first set + Σ over the second."""
-    return first + second
-
-
 def _checked_batches(columns: TrainingColumns, path: Path, progress: Progress | None) -> Iterator[Batch]:
     for batch in read_feature_batches(
         path, columns.features, columns.label, FIT_BATCH_ROWS, layout="columns", classes=columns.classes
@@ -350,7 +344,7 @@ def fit(
     digest = _DigestInBackground(files)
     if partitions is None:
         passes = 2 if evidence.shrinkage == "auto" else 1  # Ledoit-Wolf reads the data a second time
-        partitions = SerialPartitions(progress, _expected_rows(files), passes)
+        partitions = SerialPartitions(progress, expected_rows(files), passes)
     columns = TrainingColumns(
         tuple(evidence.features), evidence.training.label, tuple(classes), evidence.training.ignore_unknown_labels
     )
@@ -373,12 +367,6 @@ def fit(
         "training_label": evidence.training.label,
     }
     return FittedEvidence(tuple(evidence.features), kernel_params(result), description, counts, digest.result())
-
-
-def _expected_rows(files: Sequence[Path]) -> int | None:
-    """Rows one pass over the files reads, when every file's count is cheap to know."""
-    counts = [count_rows(path) for path in files]
-    return None if None in counts else sum(c for c in counts if c is not None)
 
 
 class _DigestInBackground:

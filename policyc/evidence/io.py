@@ -39,6 +39,7 @@ __all__ = [
     "count_rows",
     "data_file_list",
     "data_format",
+    "expected_rows",
     "read_ahead",
     "read_feature_batches",
     "read_table_batches",
@@ -369,6 +370,12 @@ def count_rows(path: Path) -> int | None:
     if data_format(path) == "parquet" and path.is_file():
         return int(_parquet_file(path).metadata.num_rows)
     return None
+
+
+def expected_rows(files: Sequence[Path]) -> int | None:
+    """Rows one pass over the files reads, when every file's count is cheap to know."""
+    counts = [count_rows(path) for path in files]
+    return None if None in counts else sum(c for c in counts if c is not None)
 
 
 def read_feature_batches(

@@ -10,17 +10,24 @@ workers in ``policyc.cluster`` (the ``dask`` extra).
 
 from __future__ import annotations
 
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterator, Sequence
+from contextlib import AbstractContextManager, contextmanager
 from pathlib import Path
-from typing import Protocol, TypeVar
+from typing import Generic, Protocol, TypeVar
+
+import numpy as np
 
 from policyc.evidence.base import Progress
 
-__all__ = ["PartitionRunner", "SerialPartitions", "tree_reduce"]
+__all__ = ["KeptHere", "KeptPartitions", "PartitionRunner", "SerialPartitions", "add_sums", "tree_reduce"]
 
 T = TypeVar("T")
+T_co = TypeVar("T_co", covariant=True)
 S = TypeVar("S")
 I = TypeVar("I")  # noqa: E741
+A = TypeVar("A")
+R = TypeVar("R")
+N = TypeVar("N", np.ndarray, int)
 Leaf = Callable[[str, Progress | None], T]
 """Statistics of one file: called with the file's path and a row progress callback (or None)."""
 Task = Callable[[S, I, Progress | None], T]
@@ -43,8 +50,33 @@ def tree_reduce(items: Sequence[T], combine: Callable[[T, T], T]) -> T:
     return level[0]
 
 
+def add_sums(first: N, second: N) -> N:
+    """Σ over the union = Σ over the first set + Σ over the second (arrays or numbers)."""
+    return first + second
+
+
+class KeptPartitions(Protocol[T_co]):
+    """Each partition's value (e.g. per-row quantities), computed once and kept where it was computed, for
+    passes that need the rows again and again (the EM iterations of ``policyc priors``)."""
+
+    def reduce(self, task: Callable[[T_co, A], R], argument: A, combine: Callable[[R, R], R]) -> R:
+        """``task(value, argument)`` for every partition's value, merged in :func:`tree_reduce`'s order."""
+        ...
+
+
+class KeptHere(Generic[T]):
+    """Partition values held in this process."""
+
+    def __init__(self, values: Sequence[T]) -> None:
+        self.values = list(values)
+
+    def reduce(self, task: Callable[[T, A], R], argument: A, combine: Callable[[R, R], R]) -> R:
+        return tree_reduce([task(value, argument) for value in self.values], combine)
+
+
 class PartitionRunner(Protocol):
-    """Runs work on every partition: statistics merged by :func:`tree_reduce`'s tree, or independent tasks."""
+    """Runs work on every partition: statistics merged by :func:`tree_reduce`'s tree, independent tasks, or
+    values kept for repeated passes."""
 
     def tree_reduce(self, leaf: Leaf[T], combine: Callable[[T, T], T], files: Sequence[Path]) -> T:
         """The leaves' results merged in :func:`tree_reduce`'s order."""
@@ -52,6 +84,10 @@ class PartitionRunner(Protocol):
 
     def map(self, task: Task[S, I, T], shared: S, items: Sequence[I]) -> list[T]:
         """``task(shared, item, progress)`` for every item, results in the items' order."""
+        ...
+
+    def keep(self, leaf: Leaf[T], files: Sequence[Path]) -> AbstractContextManager[KeptPartitions[T]]:
+        """Every file's leaf value, kept (in the memory of whoever computed it) until the context ends."""
         ...
 
 
@@ -70,6 +106,11 @@ class SerialPartitions:
     def map(self, task: Task[S, I, T], shared: S, items: Sequence[I]) -> list[T]:
         report = self._next_pass()
         return [task(shared, item, report) for item in items]
+
+    @contextmanager
+    def keep(self, leaf: Leaf[T], files: Sequence[Path]) -> Iterator[KeptPartitions[T]]:
+        report = self._next_pass()
+        yield KeptHere([leaf(str(path), report) for path in files])
 
     def _next_pass(self) -> Progress | None:
         """A progress callback for the next pass over the data, or None without a display."""

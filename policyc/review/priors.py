@@ -10,6 +10,7 @@ p̃_k(x) ∝ (π̃_k / π_k) p_k(x). EM alternates that correction (E-step) with
 
 from __future__ import annotations
 
+from functools import partial
 from pathlib import Path
 from typing import Annotated
 
@@ -19,18 +20,21 @@ from pydantic.dataclasses import dataclass
 from scipy import stats
 
 from policyc.evidence.base import Progress
-from policyc.evidence.io import DataError, count_rows, data_file_list, read_feature_batches
+from policyc.evidence.io import DataError, data_file_list, expected_rows, read_feature_batches
+from policyc.evidence.partitions import KeptHere, KeptPartitions, PartitionRunner, SerialPartitions, add_sums
 from policyc.render import dumps
 from policyc.review.shared.reports import REPORT_CONFIG
+from policyc.review.shared.shipping import ShippedRule
 from policyc.runtime import Rule
 
 __all__ = [
     "PASTE_DECIMALS",
     "PriorEstimate",
     "estimate_priors",
+    "estimate_priors_em",
     "estimate_priors_from_posteriors",
-    "posteriors_of_file",
     "priors_block",
+    "ratios_of_file",
     "render_priors",
     "rounded_priors",
     "verdict",
@@ -78,11 +82,6 @@ class PriorEstimate:
         return self.p_value < 1.0 - self.confidence
 
 
-def _log_likelihood(ratios: np.ndarray, weights: np.ndarray) -> float:
-    # ℓ(π̃) = Σ_rows ln Σ_k (π̃_k / π_k) p_k(x)
-    return float(np.sum(np.log(ratios @ weights)))
-
-
 def estimate_priors_from_posteriors(
     posteriors: np.ndarray,
     rule_priors: np.ndarray,
@@ -91,7 +90,26 @@ def estimate_priors_from_posteriors(
     max_iterations: int = 10_000,
     confidence: float = 0.95,
 ) -> PriorEstimate:
-    """EM for new priors from posteriors (n, K) computed under ``rule_priors``.
+    """EM for new priors from posteriors (n, K) computed under ``rule_priors``: :func:`estimate_priors_em` on
+    one partition held in memory."""
+    active = rule_priors > 0
+    ratios = posteriors[:, active] / rule_priors[active]  # a_k(x) = p_k(x) / π_k
+    return estimate_priors_em(
+        KeptHere([ratios]), rule_priors, classes, posteriors.shape[0], tolerance, max_iterations, confidence
+    )
+
+
+def estimate_priors_em(
+    ratios: KeptPartitions[np.ndarray],
+    rule_priors: np.ndarray,
+    classes: tuple[str, ...],
+    rows: int,
+    tolerance: float = 1e-10,
+    max_iterations: int = 10_000,
+    confidence: float = 0.95,
+) -> PriorEstimate:
+    """EM for new priors from the ratios a_k(x) = p_k(x) / π_k of ``rows`` rows, kept per partition, for the
+    classes with a non-zero rule prior; each pass sums per partition and merges the sums in the fixed tree.
 
     Classes with a rule prior of 0 have posterior 0 everywhere and keep an estimate of 0.
     Convergence: the largest change of any prior between iterations is below ``tolerance``.
@@ -100,16 +118,14 @@ def estimate_priors_from_posteriors(
     (K' classes with non-zero prior; Saerens et al. 2002 describe such a likelihood-ratio test).
     """
     active = rule_priors > 0
-    ratios = posteriors[:, active] / rule_priors[active]  # a_k(x) = p_k(x) / π_k
     estimate = rule_priors[active].copy()
     iterations, converged = 0, False
     while iterations < max_iterations and not converged:
-        corrected = ratios * estimate  # E-step: p̃_k(x) ∝ (π̃_k / π_k) p_k(x)
-        corrected /= corrected.sum(axis=1, keepdims=True)
-        updated = corrected.mean(axis=0)  # M-step: π̃_k = (1/N) Σ_rows p̃_k(x)
+        updated = ratios.reduce(_corrected_sums, estimate, add_sums) / rows  # M-step: π̃_k = (1/N) Σ_rows p̃_k(x)
         converged = float(np.max(np.abs(updated - estimate))) < tolerance
         estimate, iterations = updated, iterations + 1
-    statistic = max(0.0, 2.0 * (_log_likelihood(ratios, estimate) - _log_likelihood(ratios, rule_priors[active])))
+    new_likelihood, rule_likelihood = ratios.reduce(_log_likelihoods, (estimate, rule_priors[active]), add_sums)
+    statistic = max(0.0, 2.0 * float(new_likelihood - rule_likelihood))
     degrees = int(active.sum()) - 1
     p_value = float(stats.chi2.sf(statistic, degrees)) if degrees > 0 else 1.0
     low, high = _wald_interval(ratios, estimate, confidence)
@@ -117,21 +133,33 @@ def estimate_priors_from_posteriors(
     full_low, full_high = np.zeros_like(rule_priors), np.zeros_like(rule_priors)
     full[active], full_low[active], full_high[active] = estimate, low, high
     return PriorEstimate(
-        classes,
-        rule_priors,
-        full,
-        full_low,
-        full_high,
-        iterations,
-        converged,
-        statistic,
-        p_value,
-        posteriors.shape[0],
-        confidence,
+        classes, rule_priors, full, full_low, full_high, iterations, converged, statistic, p_value, rows, confidence
     )
 
 
-def _wald_interval(ratios: np.ndarray, estimate: np.ndarray, confidence: float) -> tuple[np.ndarray, np.ndarray]:
+def _corrected_sums(ratios: np.ndarray, estimate: np.ndarray) -> np.ndarray:
+    """Σ over a partition's rows of the corrected posteriors p̃_k(x) under the current ``estimate``."""
+    corrected = ratios * estimate  # E-step: p̃_k(x) ∝ (π̃_k / π_k) p_k(x)
+    corrected /= corrected.sum(axis=1, keepdims=True)
+    return corrected.sum(axis=0)
+
+
+def _log_likelihoods(ratios: np.ndarray, weights: tuple[np.ndarray, ...]) -> np.ndarray:
+    """A partition's share of ℓ at each of ``weights``."""
+    # ℓ(π̃) = Σ_rows ln Σ_k (π̃_k / π_k) p_k(x)
+    return np.array([np.sum(np.log(ratios @ w)) for w in weights])
+
+
+def _information(ratios: np.ndarray, estimate: np.ndarray) -> np.ndarray:
+    """A partition's share of the observed information -∂²ℓ in the K-1 free coordinates (see _wald_interval)."""
+    mixture = ratios @ estimate
+    contrasts = (ratios[:, :-1] - ratios[:, -1:]) / mixture[:, None]
+    return contrasts.T @ contrasts
+
+
+def _wald_interval(
+    ratios: KeptPartitions[np.ndarray], estimate: np.ndarray, confidence: float
+) -> tuple[np.ndarray, np.ndarray]:
     """π̂ ± z·se with se from the inverse observed information in the K-1 free coordinates.
 
     With π̃_K = 1 - Σ_{j<K} π̃_j and s(x) = Σ_k π̃_k a_k(x):
@@ -140,10 +168,7 @@ def _wald_interval(ratios: np.ndarray, estimate: np.ndarray, confidence: float) 
     n_active = estimate.size
     if n_active < 2:
         return estimate.copy(), estimate.copy()
-    mixture = ratios @ estimate
-    contrasts = (ratios[:, :-1] - ratios[:, -1:]) / mixture[:, None]
-    information = contrasts.T @ contrasts
-    free_covariance = np.linalg.pinv(information)
+    free_covariance = np.linalg.pinv(ratios.reduce(_information, estimate, add_sums))
     # the last prior is minus the sum of the free ones, so its variance is 1ᵀ C 1
     embed = np.vstack([np.eye(n_active - 1), -np.ones((1, n_active - 1))])
     variances = np.clip(np.diag(embed @ free_covariance @ embed.T), 0.0, None)
@@ -152,31 +177,52 @@ def _wald_interval(ratios: np.ndarray, estimate: np.ndarray, confidence: float) 
     return np.clip(estimate - half_width, 0.0, 1.0), np.clip(estimate + half_width, 0.0, 1.0)
 
 
-def posteriors_of_file(rule: Rule, data: Path, progress: Progress | None = None) -> np.ndarray:
-    """The rule's posteriors for every valid row of ``data`` (a file, or a directory or glob of files, in
-    :func:`~policyc.evidence.io.data_file_list`'s order), read in batches. Memory: 8·K bytes per row."""
-    parts = []
-    files = data_file_list(data)
-    counts = [count_rows(path) for path in files] if progress is not None else [None]
-    total = None if None in counts else sum(c for c in counts if c is not None)
-    for path in files:
-        for batch in read_feature_batches(path, rule.features):
-            assessment = rule.assess(batch.features)
-            parts.append(assessment.posteriors[assessment.valid])
-            if progress is not None:
-                progress(batch.features.shape[0], total)
-    if not parts or sum(p.shape[0] for p in parts) == 0:
-        raise DataError(f"{data}: no valid rows to estimate priors from")
-    return np.vstack(parts)
+def _rule_priors_of(rule: Rule) -> np.ndarray:
+    return np.array([rule.manifest["priors"][c] for c in rule.classes])
+
+
+def ratios_of_file(rule: ShippedRule, path: str, progress: Progress | None) -> np.ndarray:
+    """a_k(x) = p_k(x) / π_k of every valid row of one file (a partition's kept value; 8 bytes per row and
+    class with a non-zero rule prior), read in batches; rows with a NaN or infinite feature are not evidence."""
+    loaded = rule.load()
+    rule_priors = _rule_priors_of(loaded)
+    active = rule_priors > 0
+    parts = [np.empty((int(active.sum()), 0))]
+    for batch in read_feature_batches(Path(path), loaded.features):
+        assessment = loaded.assess(batch.features)
+        parts.append((assessment.posteriors[assessment.valid][:, active] / rule_priors[active]).T)
+        if progress is not None:
+            progress(batch.features.shape[0], None)
+    # column-major (n, K'), the layout column selection gives in memory: numpy sums each class's contiguous
+    # column pairwise (rounding error O(log n)), and a single file keeps the bits it always had
+    return np.concatenate(parts, axis=1).T
+
+
+def _row_count(ratios: np.ndarray, _: None) -> int:
+    return int(ratios.shape[0])
 
 
 def estimate_priors(
-    rule: Rule, data: Path, confidence: float = 0.95, progress: Progress | None = None
+    rule: Rule,
+    data: Path,
+    confidence: float = 0.95,
+    progress: Progress | None = None,
+    partitions: PartitionRunner | None = None,
 ) -> PriorEstimate:
-    rule_priors = np.array([rule.manifest["priors"][c] for c in rule.classes])
-    return estimate_priors_from_posteriors(
-        posteriors_of_file(rule, data, progress), rule_priors, rule.classes, confidence=confidence
-    )
+    """EM for the class mix of ``data`` (a file, or a directory or glob of files, one partition each).
+
+    Each partition's ratios are computed once and kept where they were computed (this process, or the Dask
+    worker with ``partitions`` from ``policyc.cluster``); every EM iteration, and the log-likelihood and
+    information passes, sum per partition and merge the sums in :func:`~policyc.evidence.partitions.tree_reduce`'s
+    order, so the cluster gives the bits of one process.
+    """
+    files = data_file_list(data)
+    runner = partitions if partitions is not None else SerialPartitions(progress, expected_rows(files))
+    with runner.keep(partial(ratios_of_file, ShippedRule.of(rule)), files) as ratios:
+        rows = ratios.reduce(_row_count, None, add_sums)
+        if rows == 0:
+            raise DataError(f"{data}: no valid rows to estimate priors from")
+        return estimate_priors_em(ratios, _rule_priors_of(rule), rule.classes, rows, confidence=confidence)
 
 
 def rounded_priors(estimate: PriorEstimate) -> dict[str, float]:

@@ -12,7 +12,7 @@ from hypothesis import given
 from hypothesis import strategies as st
 from sklearn.datasets import load_wine
 
-from policyc.evidence.partitions import tree_reduce
+from policyc.evidence.partitions import SerialPartitions, tree_reduce
 from policyc.files import DataFilesError, data_files, data_sha256
 from policyc.language.diagnostics import CompileError
 
@@ -26,6 +26,21 @@ def test_the_tree_pairs_neighbours_level_by_level() -> None:
     assert tree_reduce(["a"], bracket) == "a"
     with pytest.raises(ValueError, match="nothing"):
         tree_reduce([], bracket)
+
+
+def test_kept_values_are_computed_once_and_each_pass_merges_in_the_tree(tmp_path: Path) -> None:
+    paths = [tmp_path / name for name in "abcde"]
+    computed: list[str] = []
+
+    def leaf(path: str, progress: object) -> str:
+        computed.append(path)
+        return Path(path).name
+
+    with SerialPartitions().keep(leaf, paths) as kept:
+        first = kept.reduce(lambda value, tag: f"{value}{tag}", "1", lambda a, b: f"({a}{b})")
+        second = kept.reduce(lambda value, tag: f"{value}{tag}", "2", lambda a, b: f"({a}{b})")
+    assert computed == [str(path) for path in paths]  # one read of each file for both passes
+    assert (first, second) == ("(((a1b1)(c1d1))e1)", "(((a2b2)(c2d2))e2)")
 
 
 @given(st.lists(st.integers(-(10**6), 10**6), min_size=1, max_size=40))
