@@ -588,7 +588,7 @@ def diff_command(
 
 @main.command(epilog=CAUTION)
 @click.argument("rule_file", type=click.Path(dir_okay=False, path_type=Path))
-@click.argument("labelled_data", type=click.Path(dir_okay=False, path_type=Path))
+@click.argument("labelled_data", type=click.Path(path_type=Path))
 @label_option("Column of true classes.", required=True)
 @format_option("text", "markdown", "json")
 @REPORT_OUTPUT_OPTION
@@ -607,6 +607,8 @@ def diff_command(
 @CONFIDENCE_OPTION
 @RESAMPLES_OPTION
 @SEED_OPTION
+@_SCHEDULER
+@_WORKERS
 def evaluate(
     rule_file: Path,
     labelled_data: Path,
@@ -618,8 +620,11 @@ def evaluate(
     confidence: float,
     resamples: int,
     seed: int,
+    scheduler: str | None,
+    workers: int | None,
 ) -> None:
-    """Empirical risk, errors, rejects, confusion and the risk-reject curve of RULE_FILE on LABELLED_DATA.
+    """Empirical risk, errors, rejects, confusion and the risk-reject curve of RULE_FILE on LABELLED_DATA
+    (CSV or Parquet; a file, directory or glob).
 
     RULE_FILE may also be a policy file (compiled in memory). For posterior evidence the
     report adds a calibration check of the rule's (prior-corrected) posteriors. Exit 0, or 1
@@ -629,7 +634,10 @@ def evaluate(
     from policyc.review.evaluate.render import render_evaluation
 
     loaded = _load_subject(rule_file)
-    result = run_evaluation(loaded, labelled_data, label, confidence, resamples, seed, curve_points)
+    with _partitions(scheduler, workers, None) as runner:
+        result = run_evaluation(
+            loaded, labelled_data, label, confidence, resamples, seed, curve_points, partitions=runner
+        )
     _emit_report(render_evaluation(result, output_format), report_file)
     if plot_curve is not None:
         from policyc.review.plot import risk_reject_curve
@@ -778,7 +786,17 @@ def plot_curve(rule_file: Path, data: Path, label: str, picture: Path, size: Fig
     help="Two-sided level of the Wald intervals; the change test runs at level 1 - confidence.",
 )
 @QUIET_OPTION
-def priors(rule_file: Path, data: Path, output_format: str, report_file: Path | None, confidence: float) -> None:
+@_SCHEDULER
+@_WORKERS
+def priors(
+    rule_file: Path,
+    data: Path,
+    output_format: str,
+    report_file: Path | None,
+    confidence: float,
+    scheduler: str | None,
+    workers: int | None,
+) -> None:
     """Estimate the class mix of unlabelled DATA (a file, or a directory or glob of files) with RULE (EM,
     Saerens et al. 2002).
 
@@ -790,8 +808,8 @@ def priors(rule_file: Path, data: Path, output_format: str, report_file: Path | 
     from policyc.review.priors import estimate_priors, render_priors
 
     rule = _load_subject(rule_file).rule
-    with _progress("estimating") as progress:
-        estimate = estimate_priors(rule, data, confidence, progress)
+    with _progress("estimating") as progress, _partitions(scheduler, workers, progress) as runner:
+        estimate = estimate_priors(rule, data, confidence, progress, runner)
     _emit_report(render_priors(estimate, output_format), report_file)
 
 

@@ -265,3 +265,25 @@ def wine_policy_text(
         reject_cost=0.2,
         invalid_input=invalid_input,
     )
+
+
+def iris_posterior_policy_text() -> str:
+    """A three-class 0-1 policy with a reject option over posterior columns ``f0`` … ``f2`` of an upstream model
+    trained under equal priors, deployed under priors (0.2, 0.3, 0.5)."""
+    classes = ["c0", "c1", "c2"]
+    evidence = posterior_evidence(classes, [1 / 3] * 3) | {"columns": {c: f"f{k}" for k, c in enumerate(classes)}}
+    loss = 1.0 - np.eye(3)
+    return policy_text(
+        classes=classes, priors=[0.2, 0.3, 0.5], actions=names("a", 3), loss=loss, evidence=evidence, reject_cost=0.3
+    )
+
+
+def write_iris_posteriors(directory: Path, n_files: int, suffix: str = ".csv") -> list[Path]:
+    """Gaussian naive Bayes posteriors of Fisher's iris data (scikit-learn's copy; the model fitted on all 150 rows,
+    so its priors are the equal class shares) as ``f0`` … ``f2`` with the true class, split in order into files."""
+    from sklearn.datasets import load_iris
+    from sklearn.naive_bayes import GaussianNB
+
+    X, y = load_iris(return_X_y=True)
+    posteriors = GaussianNB().fit(X, y).predict_proba(X)
+    return write_partitions(directory, posteriors, [f"c{k}" for k in y], n_files, suffix)

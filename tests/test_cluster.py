@@ -10,14 +10,16 @@ import os
 import signal
 import subprocess
 import sys
+import time
 from collections.abc import Iterator
+from dataclasses import astuple
 from pathlib import Path
 
 import numpy as np
 import pyarrow.parquet as pq
 import pytest
 from click.testing import CliRunner
-from helpers import wine_policy_text, write_partitions
+from helpers import iris_posterior_policy_text, wine_policy_text, write_iris_posteriors, write_partitions
 from sklearn.datasets import load_wine
 
 from policyc.cli import main
@@ -27,7 +29,11 @@ from policyc.compiler.build import compile_policy
 from policyc.evidence.io import DataError
 from policyc.language.diagnostics import CompileError
 from policyc.partitioned import DecideSettings, decide_partitions, plan_partitions
-from policyc.runtime import InputError, rule_from_bytes
+from policyc.render import dumps
+from policyc.review.evaluate.evaluation import Evaluation, evaluate
+from policyc.review.priors import estimate_priors
+from policyc.review.shared.loading import load_rule_or_policy
+from policyc.runtime import InputError, load_rule, rule_from_bytes
 
 dd = pytest.importorskip("dask.dataframe")
 distributed = pytest.importorskip("distributed")
@@ -133,6 +139,78 @@ def test_the_cli_runs_compile_and_decide_on_a_scheduler(
     assert decided.exit_code == 0, decided.output
     assert decided.output.startswith("178 rows ->")
     assert len(list((tmp_path / "out").iterdir())) == 9
+
+
+def test_priors_on_the_cluster_equal_priors_in_one_process(
+    client: distributed.Client, wine_files: tuple[Path, np.ndarray], rule_file: Path
+) -> None:
+    directory, _ = wine_files
+    rule = load_rule(rule_file)
+    single = estimate_priors(rule, directory / "train")
+    seen: list[int | None] = []
+    spread = estimate_priors(rule, directory / "train", partitions=DaskPartitions(client, lambda n, t: seen.append(t)))
+    # each EM step sums per file and merges the 9 sums in the same tree: identical bits (the contract asks 1e-9)
+    for field in ("priors", "low", "high"):
+        np.testing.assert_array_equal(getattr(spread, field), getattr(single, field), err_msg=field)
+    assert (spread.iterations, spread.change_statistic, spread.rows) == (
+        single.iterations,
+        single.change_statistic,
+        single.rows,
+    )
+    assert seen == [9] * 9  # the ratios are computed once, one task per file
+    # the ratios kept on the workers are released once the estimate is made (the scheduler tells them soon after)
+    deadline = time.monotonic() + 10
+    while any(client.run(lambda dask_worker: len(dask_worker.data)).values()) and time.monotonic() < deadline:
+        time.sleep(0.05)
+    assert not any(client.run(lambda dask_worker: len(dask_worker.data)).values())
+
+
+def unrounded(evaluation: Evaluation) -> np.ndarray:
+    """Every number of the curve and the calibration, as the rounded JSON does not show them."""
+    assert evaluation.calibration is not None
+    bins = [astuple(b) for table in evaluation.calibration.tables for b in table]
+    rows = [*(astuple(point) for point in evaluation.curve), *bins, evaluation.calibration.ece]
+    return np.concatenate([np.array(row, dtype=float) for row in rows])
+
+
+def test_evaluate_on_the_cluster_equals_evaluate_in_one_process(client: distributed.Client, tmp_path: Path) -> None:
+    (tmp_path / "policy.yaml").write_text(iris_posterior_policy_text(), encoding="utf-8")
+    write_iris_posteriors(tmp_path / "labelled", 5, ".parquet")
+    loaded = load_rule_or_policy(tmp_path / "policy.yaml")
+    single = evaluate(loaded, tmp_path / "labelled", "label")
+    spread = evaluate(loaded, tmp_path / "labelled", "label", partitions=DaskPartitions(client))
+    # the same tallies merged in the same tree: the whole report, curve and calibration included, is identical
+    assert dumps(spread) == dumps(single)
+    np.testing.assert_array_equal(unrounded(spread), unrounded(single))  # NaN where no row is accepted
+    np.testing.assert_array_equal(spread.confusion, single.confusion)
+
+
+def test_the_cli_runs_evaluate_and_priors_on_a_scheduler(
+    client: distributed.Client, wine_files: tuple[Path, np.ndarray], rule_file: Path
+) -> None:
+    directory, _ = wine_files
+    address = client.scheduler_info()["address"]
+    for command in (
+        ["evaluate", str(rule_file), str(directory / "train"), "--label", "label", "--format", "json"],
+        ["priors", str(rule_file), str(directory / "train" / "part-0[1-7].parquet"), "--format", "json"],
+    ):
+        single = CliRunner().invoke(main, command)
+        spread = CliRunner().invoke(main, [*command, "--scheduler", address])
+        assert single.exit_code == spread.exit_code == 0, spread.output
+        assert spread.output == single.output
+
+
+def test_a_bad_file_on_a_worker_is_named_by_evaluate_and_priors(
+    client: distributed.Client, wine_files: tuple[Path, np.ndarray], rule_file: Path, tmp_path: Path
+) -> None:
+    _, X = wine_files
+    paths = write_partitions(tmp_path / "data", X, ["c0"] * len(X), 4)
+    paths[3].write_bytes(b"PAR1 truncated")
+    rule = load_rule(rule_file)
+    with pytest.raises(DataError, match=rf"{paths[3]}: cannot read as Parquet"):
+        estimate_priors(rule, tmp_path / "data", partitions=DaskPartitions(client))
+    with pytest.raises(DataError, match=rf"{paths[3]}: cannot read as Parquet"):
+        evaluate(load_rule_or_policy(rule_file), tmp_path / "data", "label", partitions=DaskPartitions(client))
 
 
 def test_workers_need_a_local_scheduler(tmp_path: Path) -> None:

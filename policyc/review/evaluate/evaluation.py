@@ -1,8 +1,12 @@
 """How a rule does on labelled data: risk, errors, rejects, confusion, the risk-reject curve, calibration.
 
 Everything is accumulated batch by batch, so memory stays bounded whatever the
-file size; the bootstrap interval of the risk works on the confusion counts
-(:mod:`policyc.review.shared.bootstrap`).
+file size; several files (a directory or glob) are tallied one by one and the
+tallies merged in a fixed tree (:mod:`policyc.evidence.partitions`), on Dask
+workers if asked. No pass needs all rows at once: the curve is a tally over a
+fixed grid of reject costs, not a sort of the rows, and the bootstrap interval of
+the risk works on the confusion counts (:mod:`policyc.review.shared.bootstrap`),
+so the same seed gives the same interval however the rows are split into files.
 
 Definitions (``loss`` is the rule's stated matrix, reject row last, in its loss_unit; a rule compiled with
 operating limits decides by the adjusted matrix L' but is charged by the stated one):
@@ -57,7 +61,10 @@ JSON shape (``policyc evaluate --format json``; keys sorted, floats rounded to
 
 from __future__ import annotations
 
+import copy
+import dataclasses
 from collections.abc import Sequence
+from functools import partial
 from pathlib import Path
 from typing import Annotated
 
@@ -66,7 +73,9 @@ from pydantic import Field, computed_field
 from pydantic.dataclasses import dataclass
 
 from policyc.batch import add_counts, assess_batch, deferrals
-from policyc.evidence.io import DEFAULT_BATCH_ROWS, DataError, read_feature_batches
+from policyc.evidence.base import Progress
+from policyc.evidence.io import DEFAULT_BATCH_ROWS, DataError, data_file_list, read_feature_batches
+from policyc.evidence.partitions import PartitionRunner, SerialPartitions
 from policyc.geometry.reach import reject_reach_value
 from policyc.review.shared.bootstrap import (
     DEFAULT_CONFIDENCE,
@@ -79,7 +88,8 @@ from policyc.review.shared.labels import label_codes
 from policyc.review.shared.loading import LoadedRule, RuleIdentity, identity
 from policyc.review.shared.losses import stated_loss
 from policyc.review.shared.reports import REPORT_CONFIG
-from policyc.runtime import Rule
+from policyc.review.shared.shipping import ShippedRule
+from policyc.runtime import Explanation, Rule
 
 __all__ = [
     "CALIBRATION_BINS",
@@ -95,10 +105,13 @@ __all__ = [
     "Evaluation",
     "LimitCheck",
     "ReliabilityBin",
+    "Tallies",
+    "TallySettings",
     "error_cells",
     "evaluate",
     "label_codes",
     "limit_checks",
+    "tally_file",
 ]
 
 CURVE_POINTS = 41
@@ -407,6 +420,13 @@ class _CurveTally:
         self.errors += (~deferred & wrong[:, None]).sum(axis=0)
         self.loss_sum += np.where(deferred, self.grid[None, :], loss[:, None]).sum(axis=0)
 
+    def merged(self, other: _CurveTally) -> _CurveTally:
+        """The sums over both sets of rows (Σ over the union = Σ over each), this one's first."""
+        total = copy.copy(self)
+        total.rejected, total.errors = self.rejected + other.rejected, self.errors + other.errors
+        total.loss_sum = self.loss_sum + other.loss_sum
+        return total
+
     def points(self, rows: int, own: float | None) -> tuple[CurvePoint, ...]:
         accepted = rows - self.rejected
         with np.errstate(invalid="ignore", divide="ignore"):
@@ -443,6 +463,13 @@ class _CalibrationTally:
             hits = np.bincount(bins, weights=(codes == k).astype(np.float64), minlength=CALIBRATION_BINS)
             self.hits[k] += hits.astype(np.int64)
 
+    def merged(self, other: _CalibrationTally) -> _CalibrationTally:
+        """The sums over both sets of rows, this one's first."""
+        total = copy.copy(self)
+        total.count, total.hits = self.count + other.count, self.hits + other.hits
+        total.predicted = self.predicted + other.predicted
+        return total
+
     def report(self, classes: Sequence[str]) -> CalibrationReport:
         tables, eces = [], []
         for k in range(len(classes)):
@@ -470,6 +497,61 @@ def _grid(value: float, own: float | None, points: int, extra: Sequence[float]) 
     return np.unique(np.asarray(costs, dtype=np.float64))
 
 
+class Tallies:
+    """Everything the report counts and sums over a set of rows: one file's, or several files' merged."""
+
+    def __init__(self, rule: Rule, grid: np.ndarray) -> None:
+        n_plain = len(rule.actions) - (1 if rule.reject_action is not None else 0)
+        self.confusion = np.zeros((len(rule.classes), len(rule.actions)), dtype=np.int64)
+        self.invalid = 0
+        self.deferred: dict[str, int] = {}
+        self.curve = _CurveTally(np.asarray(rule.params["loss"]), n_plain, grid)
+        self.calibration = _CalibrationTally(len(rule.classes)) if rule.evidence == "posterior" else None
+
+    def add(self, rule: Rule, assessed: Explanation, codes: np.ndarray) -> None:
+        """Count a batch's rows: their assessment and their labels' class indices."""
+        self.invalid += int((~assessed.valid).sum())
+        add_counts(self.deferred, deferrals(rule, assessed))
+        cells = np.bincount(codes * len(rule.actions) + assessed.action, minlength=self.confusion.size)
+        self.confusion += cells.reshape(self.confusion.shape)
+        self.curve.add(assessed.risks, assessed.valid, codes)
+        if self.calibration is not None:
+            self.calibration.add(assessed.posteriors, assessed.valid, codes)
+
+    def merged(self, other: Tallies) -> Tallies:
+        """The tallies of both sets of rows (a merge of :func:`~policyc.evidence.partitions.tree_reduce`)."""
+        total = copy.copy(self)
+        total.confusion, total.invalid = self.confusion + other.confusion, self.invalid + other.invalid
+        total.deferred = dict(self.deferred)
+        add_counts(total.deferred, other.deferred)
+        total.curve = self.curve.merged(other.curve)
+        if self.calibration is not None and other.calibration is not None:
+            total.calibration = self.calibration.merged(other.calibration)
+        return total
+
+
+@dataclasses.dataclass(frozen=True)
+class TallySettings:
+    """What every file's tally shares: the rule as artefact bytes, the label column, the curve's reject costs."""
+
+    rule: ShippedRule
+    label: str
+    grid: np.ndarray
+    batch_rows: int = DEFAULT_BATCH_ROWS
+
+
+def tally_file(settings: TallySettings, path: str, progress: Progress | None) -> Tallies:
+    """Decide one labelled file in batches and tally it (a leaf of the merge tree; runs on a worker)."""
+    rule, file = settings.rule.load(), Path(path)
+    tallies = Tallies(rule, settings.grid)
+    for batch in read_feature_batches(file, rule.features, label=settings.label, batch_rows=settings.batch_rows):
+        codes = label_codes(file, settings.label, batch, rule.classes)
+        tallies.add(rule, assess_batch(rule, batch.features, file, batch.first_row), codes)
+        if progress is not None:
+            progress(batch.features.shape[0], None)
+    return tallies
+
+
 def evaluate(
     loaded: LoadedRule,
     data: Path,
@@ -480,10 +562,18 @@ def evaluate(
     curve_points: int = CURVE_POINTS,
     extra_costs: Sequence[float] = (),
     batch_rows: int = DEFAULT_BATCH_ROWS,
+    partitions: PartitionRunner | None = None,
 ) -> Evaluation:
-    """Decide every labelled row of ``data`` in batches and tally what the report needs.
+    """Decide every labelled row of ``data`` (a file, or a directory or glob of files) in batches and tally
+    what the report needs.
 
-    Raises DataError on a missing column, a label that is not a class (naming the row), or invalid
+    Each file is tallied on its own and the tallies merged in the fixed tree of
+    :func:`~policyc.evidence.partitions.tree_reduce`, in this process or by ``partitions`` (Dask workers with
+    ``policyc.cluster``), with the same bits either way. The counts (confusion, rejects, errors, and so the
+    bootstrap interval) do not depend on how the rows are split into files; the curve's risks and the
+    calibration's sums of probabilities may differ from those of the concatenated file by rounding.
+
+    Raises DataError on a missing column, a label that is not a class (naming the file and row), or invalid
     rows under ``invalid_input: error``.
     """
     rule = loaded.rule
@@ -491,22 +581,10 @@ def evaluate(
     n_plain = len(rule.actions) - (1 if rule.reject_action is not None else 0)
     own = rule.manifest.get("reject_cost")
     value = reject_reach_value(loss[:n_plain])
-    curve = _CurveTally(loss, n_plain, _grid(value, own, curve_points, extra_costs))
-    calibration = _CalibrationTally(len(rule.classes)) if rule.evidence == "posterior" else None
-    confusion = np.zeros((len(rule.classes), len(rule.actions)), dtype=np.int64)
-    invalid = 0
-    deferred: dict[str, int] = {}
-    for batch in read_feature_batches(data, rule.features, label=label, batch_rows=batch_rows):
-        codes = label_codes(data, label, batch, rule.classes)
-        assessed = assess_batch(rule, batch.features, data, batch.first_row)
-        invalid += int((~assessed.valid).sum())
-        add_counts(deferred, deferrals(rule, assessed))
-        confusion += np.bincount(codes * len(rule.actions) + assessed.action, minlength=confusion.size).reshape(
-            confusion.shape
-        )
-        curve.add(assessed.risks, assessed.valid, codes)
-        if calibration is not None:
-            calibration.add(assessed.posteriors, assessed.valid, codes)
+    settings = TallySettings(ShippedRule.of(rule), label, _grid(value, own, curve_points, extra_costs), batch_rows)
+    runner = partitions if partitions is not None else SerialPartitions()
+    tallies = runner.tree_reduce(partial(tally_file, settings), Tallies.merged, data_file_list(data))
+    confusion = tallies.confusion
     rows = int(confusion.sum())
     if rows == 0:
         raise DataError(f"{data}: the file has no rows")
@@ -517,11 +595,11 @@ def evaluate(
         str(data),
         label,
         confusion,
-        invalid,
-        deferred,
+        tallies.invalid,
+        tallies.deferred,
         risk,
-        curve.points(rows, own),
+        tallies.curve.points(rows, own),
         value,
-        calibration.report(rule.classes) if calibration is not None else None,
+        tallies.calibration.report(rule.classes) if tallies.calibration is not None else None,
         limit_checks(rule, confusion, confidence),
     )
