@@ -485,11 +485,63 @@ class TableWriter:
     def open(self) -> Iterator[Callable[[pa.RecordBatch], None]]:
         with atomic_path(self.path) as temporary:
             if self.format == "parquet":
-                with pq.ParquetWriter(temporary, self.schema, **self.parquet_options) as writer:
-                    yield writer.write_batch
+                with _parquet_writer(temporary, self.schema, self.parquet_options) as write:
+                    yield write
             else:
                 with pacsv.CSVWriter(temporary, self.schema) as writer:
                     yield writer.write_batch
+
+
+DICTIONARY_MAX_DISTINCT = 0.5
+"""A numeric column is dictionary-encoded in a Parquet output only when at most this share of its first batch's
+values are distinct (common practice, no source: a dictionary pays off only for repeated values)."""
+
+
+@contextmanager
+def _parquet_writer(
+    path: Path, schema: pa.Schema, options: dict[str, bool]
+) -> Iterator[Callable[[pa.RecordBatch], None]]:
+    """A ParquetWriter opened at the first batch, whose values choose the columns to dictionary-encode.
+
+    pyarrow dictionary-encodes every column by default; for a column of measurements, where values hardly
+    repeat, it hashes every value only to fall back to plain encoding, several times the cost of the rest of
+    the write (tests/benchmarks/bench_decide_file.py). The values written are the same either way.
+    """
+    writer: pq.ParquetWriter | None = None
+
+    def write(batch: pa.RecordBatch) -> None:
+        nonlocal writer
+        if writer is None:
+            writer = pq.ParquetWriter(path, schema, use_dictionary=_dictionary_columns(batch), **options)
+        writer.write_batch(batch)
+
+    try:
+        yield write
+        if writer is None:  # no rows: the file still gets the schema
+            writer = pq.ParquetWriter(path, schema, **options)
+    finally:
+        if writer is not None:
+            writer.close()
+
+
+def _dictionary_columns(batch: pa.RecordBatch) -> list[str]:
+    """The Parquet column paths to dictionary-encode: all but numeric columns whose values rarely repeat."""
+    unique = {
+        name
+        for name, column in zip(batch.schema.names, batch.columns, strict=True)
+        if (pa.types.is_floating(column.type) or pa.types.is_integer(column.type))
+        # share of distinct values = distinct values / rows
+        and pc.count_distinct(column).as_py() > DICTIONARY_MAX_DISTINCT * len(column)
+    }
+    return [path for path in _parquet_column_paths(batch.schema) if path not in unique]
+
+
+def _parquet_column_paths(schema: pa.Schema) -> list[str]:
+    """The dotted leaf column paths Parquet gives ``schema``'s fields (a nested field has several)."""
+    sink = pa.BufferOutputStream()
+    pq.write_table(schema.empty_table(), sink)
+    layout = pq.read_metadata(pa.BufferReader(sink.getvalue())).schema
+    return [layout.column(i).path for i in range(len(layout))]
 
 
 # --- rows to decide on, passed through untouched ---------------------------------------------------------------

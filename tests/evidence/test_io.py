@@ -288,6 +288,64 @@ def test_table_writer_keeps_the_old_file_when_the_writing_fails(name: str, tmp_p
     assert [p.name for p in tmp_path.iterdir()] == [name]
 
 
+def _encodings(path: Path) -> dict[str, set[str]]:
+    """Each Parquet leaf column's encodings over all row groups, from the file's own metadata."""
+    metadata = pq.read_metadata(path)
+    found: dict[str, set[str]] = {}
+    for group in range(metadata.num_row_groups):
+        for i in range(metadata.num_columns):
+            column = metadata.row_group(group).column(i)
+            found.setdefault(column.path_in_schema, set()).update(column.encodings)
+    return found
+
+
+def test_parquet_output_dictionary_encodes_only_repeated_values(tmp_path: Path) -> None:
+    # Values hardly repeating (measurements, ids) are written plain; repeated ones (codes, text, nested) keep
+    # pyarrow's dictionary; every value reads back the same either way.
+    rng = np.random.default_rng(3)
+    n = 1000
+    schema = pa.schema(
+        [
+            ("measure", pa.float64()),
+            ("id", pa.int64()),
+            ("grade", pa.int32()),
+            ("few_floats", pa.float32()),
+            ("label", pa.string()),
+            ("point", pa.struct([("x", pa.float64()), ("y", pa.int8())])),
+        ]
+    )
+    batches = [
+        pa.RecordBatch.from_arrays(
+            [
+                pa.array(rng.normal(size=n)),
+                pa.array(np.arange(start, start + n)),
+                pa.array(rng.integers(0, 5, n), pa.int32()),
+                pa.array(rng.choice([0.5, 1.5], n), pa.float32()),
+                pa.array(rng.choice(["ok", "bad"], n)),
+                pa.StructArray.from_arrays(
+                    [pa.array(rng.choice([1.0, 2.0], n)), pa.array(rng.integers(0, 3, n), pa.int8())], ["x", "y"]
+                ),
+            ],
+            schema=schema,
+        )
+        for start in (0, n)
+    ]
+    target = tmp_path / "out.parquet"
+    with TableWriter(target, schema).open() as write:
+        for batch in batches:
+            write(batch)
+    assert pq.read_table(target).equals(pa.Table.from_batches(batches))
+    dictionary = {path for path, encodings in _encodings(target).items() if "RLE_DICTIONARY" in encodings}
+    assert dictionary == {"grade", "few_floats", "label", "point.x", "point.y"}
+
+
+def test_parquet_output_of_no_rows_has_the_schema(tmp_path: Path) -> None:
+    target = tmp_path / "out.parquet"
+    with TableWriter(target, SCHEMA).open():
+        pass
+    assert pq.read_table(target).equals(SCHEMA.empty_table())
+
+
 def test_a_mistyped_column_gets_a_did_you_mean(tmp_path: Path) -> None:
     data = tmp_path / "data.csv"
     data.write_text("firmness_n,grade\n1.0,ok\n", encoding="utf-8")
