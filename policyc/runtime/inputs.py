@@ -1,4 +1,5 @@
-"""What a caller passes -> the (n, d) float64 feature matrix the kernels evaluate.
+"""What a caller passes -> the (n, d) float64 feature matrix the kernels evaluate (float32 for a float32 rule
+given float32 input: no widening copy).
 
 This file imports numpy and the standard library only: ``policyc compile
 --emit-python`` copies it, like kernel.py, into every standalone module, so the
@@ -25,8 +26,8 @@ caller never wrote.
 
 from __future__ import annotations
 
-import decimal
 import numbers
+import sys
 from typing import Any
 
 import numpy as np
@@ -40,13 +41,16 @@ _SHOWN = 10
 """Names listed in one message before "and N more"."""
 
 
-def feature_matrix(X: object, features: tuple[str, ...]) -> np.ndarray:
+def feature_matrix(X: object, features: tuple[str, ...], dtype: np.dtype[Any] | type = np.float64) -> np.ndarray:
     """Return the input as a C-ordered float64 array of shape (n, len(features)); missing values are NaN.
 
+    With ``dtype`` float32 (a float32 rule), float32 values stay float32: the kernel computes in float32 anyway,
+    and widening would copy the whole input. Anything else is float64 (the kernel narrows it chunk by chunk).
     Raise InputError when the input cannot be read as feature values (see the module docstring).
     """
     kind = _table_kind(X)
-    matrix = _from_array(X, len(features)) if kind is None else _from_table(X, kind, features)
+    keep = np.dtype(dtype) == np.float32
+    matrix = _from_array(X, len(features), keep) if kind is None else _from_table(X, kind, features, keep)
     if matrix.shape[0] == 0:
         raise InputError("the input has no rows")
     return matrix
@@ -119,7 +123,7 @@ def _column(table: Any, kind: str, name: object, index: int) -> object:
     return table[name]
 
 
-def _from_table(table: object, kind: str, features: tuple[str, ...]) -> np.ndarray:
+def _from_table(table: object, kind: str, features: tuple[str, ...], keep_float32: bool) -> np.ndarray:
     names = _column_names(table, kind)
     positions: dict[object, list[int]] = {}
     for index, name in enumerate(names):
@@ -131,7 +135,7 @@ def _from_table(table: object, kind: str, features: tuple[str, ...]) -> np.ndarr
     if duplicated:
         counts = ", ".join(f"{name!r} ({len(positions[name])} times)" for name in duplicated)
         raise InputError(f"feature column(s) {counts} appear more than once in the input; keep one of each")
-    columns = [_column_values(_column(table, kind, name, positions[name][0]), name) for name in features]
+    columns = [_column_values(_column(table, kind, name, positions[name][0]), name, keep_float32) for name in features]
     lengths = {column.shape[0] for column in columns}
     if len(lengths) > 1:
         shown = ", ".join(f"{name!r}: {column.shape[0]}" for name, column in zip(features, columns, strict=True))
@@ -139,8 +143,8 @@ def _from_table(table: object, kind: str, features: tuple[str, ...]) -> np.ndarr
     return np.ascontiguousarray(np.column_stack(columns))
 
 
-def _column_values(column: object, name: str) -> np.ndarray:
-    values = _as_float(column, f"column {name!r}")
+def _column_values(column: object, name: str, keep_float32: bool) -> np.ndarray:
+    values = _as_float(column, f"column {name!r}", keep_float32)
     if values.ndim == 0:
         raise InputError(f"column {name!r} is a single value, not a column; decide_one takes one record")
     if values.ndim != 1:
@@ -148,7 +152,7 @@ def _column_values(column: object, name: str) -> np.ndarray:
     return values
 
 
-def _from_array(X: object, n_features: int) -> np.ndarray:
+def _from_array(X: object, n_features: int, keep_float32: bool) -> np.ndarray:
     try:
         array = X if np.ma.isMaskedArray(X) else np.asarray(X)
     except (ValueError, TypeError) as exc:
@@ -161,11 +165,12 @@ def _from_array(X: object, n_features: int) -> np.ndarray:
         raise InputError(f"expected a 2-D array of shape (n, {n_features}), got {array.ndim}-D{hint}")
     if array.shape[1] != n_features:
         raise InputError(f"expected {n_features} feature columns, got {array.shape[1]}")
-    return _as_float(array, "the input")
+    return _as_float(array, "the input", keep_float32)
 
 
-def _as_float(values: object, what: str) -> np.ndarray:
-    """float64 values (C order) with missing entries as NaN; refuse booleans, text and other non-numbers."""
+def _as_float(values: object, what: str, keep_float32: bool) -> np.ndarray:
+    """float64 values (C order; float32 ones kept as they are with ``keep_float32``) with missing entries as NaN;
+    refuse booleans, text and other non-numbers."""
     masked: Any = values
     mask = np.ma.getmaskarray(masked) if np.ma.isMaskedArray(masked) else None
     try:
@@ -179,8 +184,9 @@ def _as_float(values: object, what: str) -> np.ndarray:
     elif data.dtype.kind in "fiu":
         # a wider float beyond the float64 range becomes ±inf: an invalid row; a masked input is copied, so
         # that masking never writes to the caller's array
+        kind = np.float32 if keep_float32 and data.dtype == np.float32 else np.float64
         with np.errstate(over="ignore"):
-            result = np.array(data, np.float64, order="C") if mask is not None else np.asarray(data, np.float64, "C")
+            result = np.array(data, kind, order="C") if mask is not None else np.asarray(data, kind, "C")
     else:
         raise InputError(f"{what} is not numeric (dtype {data.dtype})")
     if mask is not None:
@@ -200,13 +206,14 @@ def _number(value: object, what: str, index: tuple[int, ...] = ()) -> float:
     naming ``what`` and, for an element of an array, its row (and column)."""
     if value is None or type(value).__name__ == "NAType":
         return float("nan")
-    if isinstance(value, numbers.Real | decimal.Decimal) and not isinstance(value, bool | np.bool_):
+    if isinstance(value, numbers.Real | _decimal_type()) and not isinstance(value, bool | np.bool_):
+        number: Any = value
         try:  # Real: int, float, Fraction and numpy's numbers
-            return float(value)
+            return float(number)
         except ValueError:  # a signalling NaN decimal: a NaN, so a missing value
             return float("nan")
         except OverflowError:  # an int or fraction beyond float64; str() refuses very long ints, so its bits
-            magnitude: Any = abs(value)
+            magnitude = abs(number)
             problem = f"is an integer of {int(magnitude).bit_length()} bits, beyond the float64 range"
     elif isinstance(value, bool | np.bool_):
         problem = f"must be a number, got bool {value!r}: booleans are refused; pass 0.0 or 1.0"
@@ -215,6 +222,17 @@ def _number(value: object, what: str, index: tuple[int, ...] = ()) -> float:
         problem = f"must be a number, got {type(value).__name__} {shown}"
     place = ", ".join(f"{axis} {i}" for axis, i in zip(("row", "column"), index, strict=False))
     raise InputError(f"{what}, {place} {problem}" if place else f"{what} {problem}")
+
+
+def _decimal_type() -> type:
+    """decimal.Decimal, or a type nothing is an instance of while the decimal module is not loaded (no Decimal
+    can exist then; importing it would cost a service's start-up several milliseconds)."""
+    module = sys.modules.get("decimal")
+    return module.Decimal if module is not None else _NoDecimal
+
+
+class _NoDecimal:
+    """Stands for decimal.Decimal before anything has imported the decimal module."""
 
 
 def _listed(names: list[Any]) -> str:

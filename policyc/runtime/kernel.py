@@ -96,7 +96,7 @@ def evaluate(
     X: object, evidence: str, rule_plan: dict[str, np.ndarray], features: tuple[str, ...], invalid_input: str
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Posteriors, risks and validity for raw input; raise InputError on invalid rows under "error"."""
-    prepared = feature_matrix(X, features)
+    prepared = feature_matrix(X, features, rule_plan["loss_t"].dtype)
     posteriors, risks, valid, _ = posteriors_and_risks(prepared, evidence, rule_plan)
     if invalid_input == "error" and not valid.all():
         raise InputError(invalid_rows_message(valid, prepared=prepared, features=features))

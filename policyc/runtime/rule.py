@@ -9,14 +9,16 @@ from collections.abc import Iterator, Mapping
 from contextlib import contextmanager
 from dataclasses import dataclass
 from types import MappingProxyType
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
-from numpy.typing import DTypeLike
 
 from . import inputs, kernel
 from .artefact import MAX_RULE_BYTES, decode_rule
 from .errors import ArtefactError, InputError
+
+if TYPE_CHECKING:  # numpy.typing costs start-up time and is needed by type checkers only
+    from numpy.typing import DTypeLike
 
 __all__ = ["REASONS", "Explanation", "Rule", "load_rule", "rule_from_bytes"]
 
@@ -210,7 +212,7 @@ class Rule:
         tests/benchmarks/bench_decide.py.
         """
         try:  # not _input_refusals: a context manager costs a microsecond here, a third of a one-row decision
-            prepared = inputs.feature_matrix(X, self.features)
+            prepared = inputs.feature_matrix(X, self.features, self.dtype)
         except inputs.InputError as error:
             raise _runtime_input_error(error) from None
         actions, valid = _decide_in_parallel(prepared, self.evidence, self._plan, len(self.actions) - 1, threads)
@@ -222,7 +224,7 @@ class Rule:
         """The action index and validity per row, each shape (n,), without posteriors or risks; invalid rows
         never raise (they get the reject action, or index ``len(actions) - 1``). Input as for :meth:`decide`."""
         with _input_refusals():
-            prepared = inputs.feature_matrix(X, self.features)
+            prepared = inputs.feature_matrix(X, self.features, self.dtype)
         return _decide_in_parallel(prepared, self.evidence, self._plan, len(self.actions) - 1, 1)
 
     def decide_names(self, X: object) -> np.ndarray:
@@ -266,7 +268,7 @@ class Rule:
         if inputs.is_record(X):
             return self.row_from_record(X)[None, :]  # type: ignore[arg-type]
         with _input_refusals():
-            return inputs.feature_matrix(X, self.features)
+            return inputs.feature_matrix(X, self.features, self.dtype)
 
     def _explain_matrix(self, prepared: np.ndarray) -> Explanation:
         posteriors, risks, valid, novel = kernel.posteriors_and_risks(prepared, self.evidence, self._plan)

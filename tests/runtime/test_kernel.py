@@ -153,6 +153,29 @@ def test_float32_agrees_with_float64_to_its_precision(covariance: str) -> None:
     assert ((single.decide(X) != explanation.action) & ~near_tie).sum() == 0
 
 
+@pytest.mark.parametrize("covariance", FORMS)
+def test_float32_input_to_a_float32_rule_is_not_widened_and_decides_as_widened(covariance: str) -> None:
+    # Law: widening float32 values to float64 and narrowing them back is exact, so a float32 rule must give
+    # the same bits whether it receives the float32 values or their float64 widening.
+    single = random_rule(19, covariance).astype(np.float32)
+    X = sample(single, 20, 3 * kernel.CHUNK_ROWS + 5).astype(np.float32)
+    X[7, 2] = np.nan  # an invalid row stays invalid on both paths
+    assert kernel.feature_matrix(X, single.features, np.float32) is X  # C-ordered float32: used as it is
+    np.testing.assert_array_equal(single.decide(X), single.decide(X.astype(np.float64)))
+    np.testing.assert_array_equal(single.posteriors(X), single.posteriors(X.astype(np.float64)))
+
+
+@pytest.mark.parametrize(
+    ("rule_dtype", "given", "kept"),
+    [(np.float32, np.float32, np.float32), (np.float32, np.float64, np.float64), (np.float64, np.float32, np.float64)],
+)
+def test_input_is_float64_unless_a_float32_rule_receives_float32(rule_dtype: type, given: type, kept: type) -> None:
+    columns = {"a": np.arange(3, dtype=given), "b": np.ones(3, dtype=given)}
+    assert kernel.feature_matrix(columns, ("a", "b"), rule_dtype).dtype == kept
+    assert kernel.feature_matrix(np.column_stack(list(columns.values())), ("a", "b"), rule_dtype).dtype == kept
+    assert kernel.feature_matrix(np.arange(4).reshape(2, 2), ("a", "b"), rule_dtype).dtype == np.float64  # integers
+
+
 @pytest.mark.parametrize("dtype", ["float16", "int64", np.complex128, "no-such-type", None])
 def test_only_float32_and_float64_kernels_exist(dtype: object) -> None:
     with pytest.raises(InputError, match="dtype must be float32 or float64"):

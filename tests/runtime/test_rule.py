@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import io
 import json
+import subprocess
+import sys
 import zipfile
 from pathlib import Path
 from typing import Any
@@ -411,3 +413,27 @@ def test_a_tie_with_the_reject_cost_takes_the_action() -> None:
     assert rule.decide_names(half).tolist() == ["left"]
     below = tie_rule(["left", "right"], np.array([[0.0, 1.0], [1.0, 0.0]]), reject_cost=0.4999)
     assert below.decide_names(half).tolist() == ["reject"]
+
+
+# --- start-up -------------------------------------------------------------------------------------------
+
+SERVICE_START = """
+import json, sys
+from policyc.runtime import load_rule
+rule = load_rule(sys.argv[1])
+record = dict.fromkeys(rule.features, 1.0)
+first = rule.decide_one(record)
+loaded = sorted(name for name in ("decimal", "numpy.typing") if name in sys.modules)
+from decimal import Decimal
+second = rule.decide_one({name: Decimal("1.0") for name in rule.features})
+print(json.dumps({"loaded": loaded, "same": first == second}))
+"""
+
+
+def test_a_service_start_loads_neither_decimal_nor_numpy_typing_yet_reads_decimals_later(packhouse_file: Path) -> None:
+    # Each costs start-up milliseconds (tests/benchmarks/bench_all.py); a Decimal can only exist once its module
+    # is loaded, and then it is read like the float it stands for.
+    result = subprocess.run(
+        [sys.executable, "-c", SERVICE_START, str(packhouse_file)], capture_output=True, text=True, check=True
+    )
+    assert json.loads(result.stdout) == {"loaded": [], "same": True}
