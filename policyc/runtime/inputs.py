@@ -28,7 +28,7 @@ from __future__ import annotations
 
 import numbers
 import sys
-from typing import Any
+from typing import Any, TypeGuard
 
 import numpy as np
 
@@ -48,12 +48,21 @@ def feature_matrix(X: object, features: tuple[str, ...], dtype: np.dtype[Any] | 
     and widening would copy the whole input. Anything else is float64 (the kernel narrows it chunk by chunk).
     Raise InputError when the input cannot be read as feature values (see the module docstring).
     """
-    kind = _table_kind(X)
     keep = np.dtype(dtype) == np.float32
+    if _ready(X, len(features), keep):
+        return X  # already what the kernels take: skip the general checks (a one-row call pays them per row)
+    kind = _table_kind(X)
     matrix = _from_array(X, len(features), keep) if kind is None else _from_table(X, kind, features, keep)
     if matrix.shape[0] == 0:
         raise InputError("the input has no rows")
     return matrix
+
+
+def _ready(X: object, n_features: int, keep_float32: bool) -> TypeGuard[np.ndarray]:
+    """Whether ``X`` is a plain C-ordered (n ≥ 1, n_features) float64 array (or float32 with ``keep_float32``)."""
+    if type(X) is not np.ndarray or X.ndim != 2 or not X.shape[0] or X.shape[1] != n_features:
+        return False
+    return X.flags.c_contiguous and (X.dtype == np.float64 or (keep_float32 and X.dtype == np.float32))
 
 
 def is_record(X: object) -> bool:

@@ -367,12 +367,15 @@ def decide_row(x: np.ndarray, evidence: str, rule_plan: dict[str, np.ndarray], i
         top = scores.max()  # NaN propagates (a NaN score of one class makes the row invalid, as in _chunk)
         if top - top != 0.0:  # NaN or ±inf: the row is invalid (see gaussian_scores)
             return invalid_action, False
-        if novel_rows(x[None, :], rule_plan)[0]:
+        if "novelty_threshold" in rule_plan and novel_rows(x[None, :], rule_plan)[0]:
             return invalid_action, True  # the reject action, for novelty
         # R(a|x) = Σ_k λ(a|k) P(k|x) with P(k|x) = exp(s_k - max_j s_j) / Σ_i exp(s_i - max_j s_j): one product
         # with [λᵀ, 1] gives every unnormalised risk and the normaliser
-        unnormalised = np.exp(scores - top) @ rule_plan["loss_t_sum"]
-        risks = (unnormalised[:-1] / unnormalised[-1]).tolist()
+        scores -= top
+        np.exp(scores, out=scores)
+        unnormalised = (scores @ rule_plan["loss_t_sum"]).tolist()
+    normaliser = unnormalised.pop()
+    risks = [risk / normaliser for risk in unnormalised]  # a few actions: Python's division beats a numpy call
     for index, cost in zip(rule_plan["constant_index"].tolist(), rule_plan["constant_costs"].tolist(), strict=True):
         risks[index] = cost  # the reject row's risk is exactly its cost
     return risks.index(min(risks)), True  # the first minimum: ties go to the earlier action
