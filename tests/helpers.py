@@ -1,4 +1,4 @@
-"""Builders shared by the compile, runtime, emit and reference tests.
+"""Builders shared by the compile, runtime, emit, reference and diff tests.
 
 Policies are written as YAML text (JSON flow mappings are YAML too, and ``json.dumps``
 writes every float64 so that it reads back exactly). Two ways to get a Rule:
@@ -16,6 +16,7 @@ import hashlib
 import importlib.util
 import json
 import sys
+import textwrap
 from collections.abc import Sequence
 from pathlib import Path
 from types import ModuleType
@@ -29,6 +30,7 @@ from policyc.evidence import FittedEvidence, fit_evidence
 from policyc.evidence.gaussian import GaussianFit, kernel_params
 from policyc.language.model import build_policy
 from policyc.language.source import parse_source
+from policyc.review.shared.loading import LoadedRule, load_rule_or_policy
 from policyc.runtime import Rule
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -287,3 +289,63 @@ def write_iris_posteriors(directory: Path, n_files: int, suffix: str = ".csv") -
     X, y = load_iris(return_X_y=True)
     posteriors = GaussianNB().fit(X, y).predict_proba(X)
     return write_partitions(directory, posteriors, [f"c{k}" for k in y], n_files, suffix)
+
+
+def binary_policy(c00: float, c01: float, c10: float, c11: float, revision: int = 1) -> str:
+    """Two classes (neg = 0, pos = 1) with Elkan's cost indices: c_ij = cost of predicting i when the truth is j."""
+    return textwrap.dedent(
+        f"""\
+        policy: binary
+        revision: {revision}
+        classes: [neg, pos]
+        priors: {{neg: 0.5, pos: 0.5}}
+        actions: [say_neg, say_pos]
+        loss:
+          say_neg: {{neg: {c00}, pos: {c01}}}
+          say_pos: {{neg: {c10}, pos: {c11}}}
+        evidence:
+          kind: posterior
+          columns: {{neg: p_neg, pos: p_pos}}
+          trained_priors: {{neg: 0.5, pos: 0.5}}
+          calibration: {{method: none}}
+        """
+    )
+
+
+def three_class_policy(reject_cost: float | None, revision: int = 1) -> str:
+    """0-1 loss over three classes, optionally with a reject option of cost t."""
+    reject = f"reject: {{action: defer, cost: {reject_cost}}}\n" if reject_cost is not None else ""
+    return (
+        textwrap.dedent(
+            f"""\
+        policy: three
+        revision: {revision}
+        classes: [a, b, c]
+        priors: {{a: 0.3, b: 0.3, c: 0.4}}
+        actions: [say_a, say_b, say_c]
+        loss:
+          say_a: {{a: 0, b: 1, c: 1}}
+          say_b: {{a: 1, b: 0, c: 1}}
+          say_c: {{a: 1, b: 1, c: 0}}
+        evidence:
+          kind: posterior
+          columns: {{a: p_a, b: p_b, c: p_c}}
+          trained_priors: {{a: 0.3, b: 0.3, c: 0.4}}
+          calibration: {{method: none}}
+        """
+        )
+        + reject
+    )
+
+
+def load_text(directory: Path, name: str, text: str) -> LoadedRule:
+    path = directory / name
+    path.write_text(text, encoding="utf-8")
+    return load_rule_or_policy(path)
+
+
+def position(path: Path, text: str, line_start: str, value: str) -> str:
+    """``file:line:col`` of ``value`` on the first line of ``text`` that starts with ``line_start`` (1-based)."""
+    lines = text.splitlines()
+    line = next(i for i, content in enumerate(lines, 1) if content.lstrip().startswith(line_start))
+    return f"{path}:{line}:{lines[line - 1].index(value, len(line_start) - 1) + 1}"

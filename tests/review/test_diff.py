@@ -13,13 +13,13 @@ import json
 import os
 import re
 import shutil
-import textwrap
 from pathlib import Path
 
 import numpy as np
 import pytest
 import scipy.stats
 from click.testing import CliRunner
+from helpers import binary_policy, load_text, position, three_class_policy
 from jsonschema import Draft202012Validator
 
 from policyc.cli import main
@@ -28,7 +28,7 @@ from policyc.compiler.build import compile_policy
 from policyc.geometry.sampling import simplex_points
 from policyc.review.diff import GateLimits, data_diff, diff, posterior_space_diff, semantic_changes
 from policyc.review.shared.bootstrap import categorical_mean_interval
-from policyc.review.shared.loading import LoadedRule, load_rule_or_policy
+from policyc.review.shared.loading import load_rule_or_policy
 
 ROOT = Path(__file__).resolve().parents[2]
 PACKHOUSE = ROOT / "policies-demo" / "packhouse"
@@ -37,59 +37,6 @@ SNAPSHOTS = Path(__file__).resolve().parents[1] / "snapshots"
 
 
 # --- builders ----------------------------------------------------------------------------------
-
-
-def binary_policy(c00: float, c01: float, c10: float, c11: float, revision: int = 1) -> str:
-    """Two classes (neg = 0, pos = 1) with Elkan's cost indices: c_ij = cost of predicting i when the truth is j."""
-    return textwrap.dedent(
-        f"""\
-        policy: binary
-        revision: {revision}
-        classes: [neg, pos]
-        priors: {{neg: 0.5, pos: 0.5}}
-        actions: [say_neg, say_pos]
-        loss:
-          say_neg: {{neg: {c00}, pos: {c01}}}
-          say_pos: {{neg: {c10}, pos: {c11}}}
-        evidence:
-          kind: posterior
-          columns: {{neg: p_neg, pos: p_pos}}
-          trained_priors: {{neg: 0.5, pos: 0.5}}
-          calibration: {{method: none}}
-        """
-    )
-
-
-def three_class_policy(reject_cost: float | None, revision: int = 1) -> str:
-    """0-1 loss over three classes, optionally with a reject option of cost t."""
-    reject = f"reject: {{action: defer, cost: {reject_cost}}}\n" if reject_cost is not None else ""
-    return (
-        textwrap.dedent(
-            f"""\
-        policy: three
-        revision: {revision}
-        classes: [a, b, c]
-        priors: {{a: 0.3, b: 0.3, c: 0.4}}
-        actions: [say_a, say_b, say_c]
-        loss:
-          say_a: {{a: 0, b: 1, c: 1}}
-          say_b: {{a: 1, b: 0, c: 1}}
-          say_c: {{a: 1, b: 1, c: 0}}
-        evidence:
-          kind: posterior
-          columns: {{a: p_a, b: p_b, c: p_c}}
-          trained_priors: {{a: 0.3, b: 0.3, c: 0.4}}
-          calibration: {{method: none}}
-        """
-        )
-        + reject
-    )
-
-
-def load_text(directory: Path, name: str, text: str) -> LoadedRule:
-    path = directory / name
-    path.write_text(text, encoding="utf-8")
-    return load_rule_or_policy(path)
 
 
 @pytest.fixture(scope="module")
@@ -495,13 +442,21 @@ def test_a_diff_between_revisions_with_limits_says_when_a_price_moves(tmp_path: 
     changes = {c.what: c for c in semantic_changes(old, new)}
     price = changes["limit max_share[hold_for_inspector] price"]
     assert price.change == "changed" and float(price.new) > float(price.old) >= 0.0  # a tighter cap costs more
-    assert changes["limit max_share[hold_for_inspector]"].new == "0.03"
+    share = changes["limit max_share[hold_for_inspector]"]
+    assert share.new == "0.03" and share.new_location == position(
+        tighter, tighter.read_text("utf-8"), "hold_for_", "0.03"
+    )
     assert price.new_location is not None and price.new_location.startswith(str(tighter))
     # the loss entries compared are the stated ones: the limits' adjustments are not reported as loss edits
     assert not any(what.startswith("loss[") for what in changes)
     against_r4 = {c.what for c in semantic_changes(load_rule_or_policy(r6.parent / "policy-r4.yaml"), old)}
     assert not any(what.startswith("loss[") for what in against_r4)
     assert "limit min_recall[defect] price" in against_r4
+    # a minimum recall names the actions that count as catching the class; a maximum share has none
+    assert (
+        "limit min_recall[defect] actions" in against_r4
+        and "limit max_share[hold_for_inspector] actions" not in against_r4
+    )
 
 
 def test_data_diff_charges_a_limited_rule_by_its_stated_matrix() -> None:

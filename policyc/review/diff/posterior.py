@@ -85,27 +85,22 @@ def _named_intervals(loss: np.ndarray, actions: Sequence[str]) -> tuple[ActionIn
     return tuple(ActionInterval(i.low, i.high, actions[i.action]) for i in posterior_intervals(loss))
 
 
-def _action_at(intervals: Sequence[ActionInterval], q: float) -> str:
-    return next(i.action for i in intervals if i.low <= q <= i.high)
+def _action_on(intervals: Sequence[ActionInterval], low: float, high: float) -> str:
+    """The action of the interval that holds the piece [low, high] (pieces are cut at every interval's edge)."""
+    return next(i.action for i in intervals if i.low <= low and high <= i.high)
 
 
 def _two_class_movements(
     old: Rule, new: Rule, old_intervals: Sequence[ActionInterval], new_intervals: Sequence[ActionInterval]
 ) -> tuple[Movement, ...]:
-    """Sub-intervals of q = P(second class | x) where the chosen action differs, adjacent pieces merged."""
+    """Sub-intervals of q = P(second class | x) where the chosen action differs. Every edge is one where a side's
+    action changes (each side's equal neighbours are merged), so two pieces in a row never hold the same pair."""
     same = same_actions(old, new)
     edges = sorted({e for i in (*old_intervals, *new_intervals) for e in (i.low, i.high)})
-    movements: list[Movement] = []
+    movements = []
     for low, high in itertools.pairwise(edges):
-        middle = 0.5 * (low + high)  # one action per piece: read it at the midpoint
-        before, after = _action_at(old_intervals, middle), _action_at(new_intervals, middle)
-        if same[old.actions.index(before), new.actions.index(after)]:
-            continue
-        last = movements[-1] if movements else None
-        continues = last is not None and (last.old_action, last.new_action, last.high) == (before, after, low)
-        if last is not None and last.low is not None and continues:
-            movements[-1] = Movement(before, after, high - last.low, 0.0, last.low, high)  # length = high - low
-        else:
+        before, after = _action_on(old_intervals, low, high), _action_on(new_intervals, low, high)
+        if not same[old.actions.index(before), new.actions.index(after)]:
             movements.append(Movement(before, after, high - low, 0.0, low, high))  # length = high - low
     return tuple(movements)
 

@@ -104,16 +104,17 @@ def _limit_facts(record: dict[str, Any] | None) -> dict[str, _Fact]:
 
 
 def _policy_path(loaded: LoadedRule, path: tuple[str | int, ...]) -> tuple[str | int, ...]:
-    """A rule-side path as it is spelled in this policy file (a gain policy states gain: and reject gain:)."""
+    """A rule-side path as it is spelled in this policy file (a gain policy states gain: and reject gain:;
+    features sit under evidence: a Gaussian's ``features`` list, other kinds' ``columns``)."""
     policy = loaded.policy
-    if policy is None or not path:
+    if policy is None:
         return path
     if path[0] == "loss":
         return (policy.matrix_key, *path[1:])
     if path == ("reject", "cost") and policy.reject is not None and policy.reject.cost is None:
         return ("reject", "gain")
-    if path == ("features",):
-        return ("evidence", "features") if policy.evidence.kind == "gaussian" else ("evidence", "columns")
+    if path[0] == "features":
+        return ("evidence", "features" if policy.evidence.kind == "gaussian" else "columns", *path[1:])
     return path
 
 
