@@ -449,7 +449,9 @@ def test_a_diff_between_revisions_with_limits_says_when_a_price_moves(tmp_path: 
     assert price.new_location is not None and price.new_location.startswith(str(tighter))
     # the loss entries compared are the stated ones: the limits' adjustments are not reported as loss edits
     assert not any(what.startswith("loss[") for what in changes)
-    against_r4 = {c.what for c in semantic_changes(load_rule_or_policy(r6.parent / "policy-r4.yaml"), old)}
+    against_r4 = {c.what: c for c in semantic_changes(load_rule_or_policy(r6.parent / "policy-r4.yaml"), old)}
+    recall = against_r4["limit min_recall[defect]"]
+    assert recall.new_location == position(r6, r6.read_text("utf-8"), "defect: {actions", "0.99")
     assert not any(what.startswith("loss[") for what in against_r4)
     assert "limit min_recall[defect] price" in against_r4
     # a minimum recall names the actions that count as catching the class; a maximum share has none
