@@ -152,9 +152,9 @@ def _log_likelihoods(ratios: np.ndarray, weights: tuple[np.ndarray, ...]) -> np.
 
 def _information(ratios: np.ndarray, estimate: np.ndarray) -> np.ndarray:
     """A partition's share of the observed information -∂²ℓ in the K-1 free coordinates (see _wald_interval)."""
-    mixture = ratios @ estimate
-    contrasts = (ratios[:, :-1] - ratios[:, -1:]) / mixture[:, None]
-    return contrasts.T @ contrasts
+    mixture = ratios @ estimate  # s(x) = Σ_k π̃_k a_k(x)
+    contrasts = (ratios[:, :-1] - ratios[:, -1:]) / mixture[:, None]  # c_i(x) = (a_i - a_K) / s
+    return contrasts.T @ contrasts  # -∂²ℓ/∂π̃_i∂π̃_j = Σ_rows c_i c_j
 
 
 def _wald_interval(
@@ -190,6 +190,7 @@ def ratios_of_file(rule: ShippedRule, path: str, progress: Progress | None) -> n
     parts = [np.empty((int(active.sum()), 0))]
     for batch in read_feature_batches(Path(path), loaded.features):
         assessment = loaded.assess(batch.features)
+        # a_k(x) = p_k(x) / π_k, kept transposed: (K', rows of the batch)
         parts.append((assessment.posteriors[assessment.valid][:, active] / rule_priors[active]).T)
         if progress is not None:
             progress(batch.features.shape[0], None)

@@ -11,11 +11,14 @@ to a temporary directory, then measures, side by side in one run:
 * ``fit``: ``policyc compile``'s fit of full-covariance Gaussians with Ledoit-Wolf shrinkage (two passes over
   the files), in one fresh process, then on a ``LocalCluster`` of ``--workers`` single-threaded processes;
 * ``decide``: every file decided into an output directory, one process, then the cluster;
+* ``evaluate`` (the labels are the data's own) and ``priors`` (EM: one read, then one round of small tasks per
+  iteration on the cluster), one process, then the cluster;
 * the merge tree: one merge of two sets of per-class moments on the client, and the cluster's cost per tree
   level (a tree over 16 trivial leaves minus a single trivial leaf, divided by its 4 levels).
 
 It prints rows/s, the cluster/one-process ratios, the one process's peak RSS and each worker's, checks that
-the cluster's parameters equal the single process's bit for bit and that the decisions agree, and prints what
+the cluster's parameters equal the single process's bit for bit, that the decisions agree and that the
+evaluation and the priors estimate are the same bits, and prints what
 the figures predict for a cluster of N machines. Files are deleted afterwards unless ``--keep``.
 """
 
@@ -106,6 +109,35 @@ def task_decide(workdir: Path) -> dict[str, Any]:
     return {"seconds": seconds, "peak_rss_mb": peak_rss_mb(), "actions": counts.actions}
 
 
+def review_figures(evaluation: Any, estimate: Any) -> dict[str, Any]:
+    """What must agree between one process and the cluster: the evaluation report and the estimate, unrounded."""
+    from policyc.render import dumps
+
+    curve = [float(value).hex() for point in evaluation.curve for value in (point.risk, point.error_rate)]
+    priors = [float(value).hex() for value in (*estimate.priors, *estimate.low, *estimate.high)]
+    return {"evaluation": dumps(evaluation), "curve": curve, "estimate": priors, "iterations": estimate.iterations}
+
+
+def timed_review(workdir: Path, rule_name: str, partitions: Any = None) -> dict[str, Any]:
+    """``evaluate`` and ``priors`` over the data directory, timed, with the figures that must agree."""
+    from policyc.review.evaluate.evaluation import evaluate
+    from policyc.review.priors import estimate_priors
+    from policyc.review.shared.loading import load_rule_or_policy
+
+    loaded = load_rule_or_policy(workdir / rule_name)
+    start = time.perf_counter()
+    evaluation = evaluate(loaded, workdir / "data", LABEL, partitions=partitions)
+    evaluate_seconds = time.perf_counter() - start
+    start = time.perf_counter()
+    estimate = estimate_priors(loaded.rule, workdir / "data", partitions=partitions)
+    priors_seconds = time.perf_counter() - start
+    return {"evaluate": evaluate_seconds, "priors": priors_seconds} | review_figures(evaluation, estimate)
+
+
+def task_review(workdir: Path) -> dict[str, Any]:
+    return timed_review(workdir, "single.rule") | {"peak_rss_mb": peak_rss_mb()}
+
+
 def run_child(task: str, workdir: Path) -> dict[str, Any]:
     """One task in a fresh interpreter, so that its peak memory is its own."""
     command = [sys.executable, __file__, "--task", task, "--workdir", str(workdir)]
@@ -118,7 +150,9 @@ def run_child(task: str, workdir: Path) -> dict[str, Any]:
 
 def warm_up() -> None:
     import policyc.evidence.gaussian
-    import policyc.partitioned  # noqa: F401
+    import policyc.partitioned
+    import policyc.review.evaluate.evaluation
+    import policyc.review.priors  # noqa: F401
 
 
 def trivial_leaf(value: Any, path: str, progress: Any) -> Any:
@@ -181,6 +215,7 @@ def cluster_phase(workdir: Path, n_workers: int) -> dict[str, Any]:
             DaskPartitions(client),
         )
         decide_seconds = time.perf_counter() - start
+        review = timed_review(workdir, "single.rule", DaskPartitions(client))
         worker_rss = client.run(peak_rss_mb)
         first = sorted((workdir / "data").iterdir())[0]
         columns = TrainingColumns(tuple(FEATURES), LABEL, tuple(CLASSES), False)
@@ -189,6 +224,7 @@ def cluster_phase(workdir: Path, n_workers: int) -> dict[str, Any]:
         "startup": startup,
         "fit": fit_seconds,
         "decide": decide_seconds,
+        "review": review,
         "worker_peak_rss_mb": sorted(worker_rss.values()),
         "rule_bytes": rule_bytes,
         "actions": counts.actions,
@@ -216,6 +252,18 @@ def report(n_rows: int, n_files: int, n_workers: int, single: dict[str, Any], sp
         f"              decide {n_rows / spread['decide']:>12,.0f} rows/s  ({spread['decide']:.1f} s)  "
         f"ratio to one process {decide_single['seconds'] / spread['decide']:.2f}"
     )
+    review_single, review_spread = single["review"], spread["review"]
+    for name in ("evaluate", "priors"):
+        print(
+            f"{name:>20} one process {n_rows / review_single[name]:>12,.0f} rows/s ({review_single[name]:.1f} s), "
+            f"cluster {n_rows / review_spread[name]:>12,.0f} rows/s ({review_spread[name]:.1f} s), "
+            f"ratio {review_single[name] / review_spread[name]:.2f}"
+        )
+    print(
+        f"priors: one read, then {review_spread['iterations']} EM iterations, each a round of {n_files} small tasks "
+        f"(about one tree level's cost on the cluster); one process's peak RSS for evaluate and priors "
+        f"{review_single['peak_rss_mb']:.0f} MB"
+    )
     print("worker peak RSS (MB, whole run): " + ", ".join(f"{mb:.0f}" for mb in spread["worker_peak_rss_mb"]))
     levels = math.ceil(math.log2(n_files))
     print(
@@ -234,7 +282,7 @@ def report(n_rows: int, n_files: int, n_workers: int, single: dict[str, Any], sp
 
 
 def child_main(args: argparse.Namespace) -> int:
-    result = {"fit": task_fit, "decide": task_decide}[args.task](args.workdir)
+    result = {"fit": task_fit, "decide": task_decide, "review": task_review}[args.task](args.workdir)
     print(json.dumps(result))
     return 0
 
@@ -246,7 +294,7 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--workers", type=int, default=2)
     parser.add_argument("--dir", type=Path, default=None, help="where to write the files (default: a temp dir)")
     parser.add_argument("--keep", action="store_true", help="keep the generated files")
-    parser.add_argument("--task", choices=["fit", "decide"], help=argparse.SUPPRESS)
+    parser.add_argument("--task", choices=["fit", "decide", "review"], help=argparse.SUPPRESS)
     parser.add_argument("--workdir", type=Path, help=argparse.SUPPRESS)
     args = parser.parse_args(argv)
     if args.task is not None:
@@ -262,13 +310,15 @@ def main(argv: list[str] | None = None) -> int:
             f"in {time.perf_counter() - start:.1f} s: {workdir}"
         )
         write_policy(workdir)
-        single = {"fit": run_child("fit", workdir), "decide": run_child("decide", workdir)}
+        single = {task: run_child(task, workdir) for task in ("fit", "decide", "review")}
         spread = cluster_phase(workdir, args.workers)
         identical = spread["rule_bytes"] == (workdir / "single.rule").read_bytes()
         print(f"cluster rule identical to the single-process rule (byte for byte): {identical}")
         print(f"decision counts agree: {spread['actions'] == single['decide']['actions']}")
+        same_review = all(spread["review"][key] == single["review"][key] for key in ("evaluation", "curve", "estimate"))
+        print(f"evaluation and priors estimate identical to one process's (bit for bit): {same_review}")
         report(args.rows, args.files, args.workers, single, spread)
-        return 0 if identical and spread["actions"] == single["decide"]["actions"] else 1
+        return 0 if identical and spread["actions"] == single["decide"]["actions"] and same_review else 1
     finally:
         if not args.keep:
             shutil.rmtree(workdir, ignore_errors=True)

@@ -512,6 +512,7 @@ class Tallies:
         """Count a batch's rows: their assessment and their labels' class indices."""
         self.invalid += int((~assessed.valid).sum())
         add_counts(self.deferred, deferrals(rule, assessed))
+        # n[k, a] += rows of true class k given action a (cell k·A + a of the flattened (K, A) table)
         cells = np.bincount(codes * len(rule.actions) + assessed.action, minlength=self.confusion.size)
         self.confusion += cells.reshape(self.confusion.shape)
         self.curve.add(assessed.risks, assessed.valid, codes)
