@@ -28,6 +28,8 @@ from policyc.review.shared.shipping import ShippedRule
 from policyc.runtime import Rule
 
 __all__ = [
+    "EM_MAX_ITERATIONS",
+    "EM_TOLERANCE",
     "PASTE_DECIMALS",
     "PriorEstimate",
     "estimate_priors",
@@ -40,6 +42,10 @@ __all__ = [
     "verdict",
 ]
 
+EM_TOLERANCE = 1e-10
+"""EM stops once no prior moves by this much in an iteration."""
+EM_MAX_ITERATIONS = 10_000
+"""EM stops here unconverged (classes that barely differ converge at a rate within 1e-3 of 1)."""
 PASTE_DECIMALS = 4
 """Decimals of the pasteable ``priors:`` block; the rounding remainder goes to the largest class so it sums to 1."""
 
@@ -86,8 +92,8 @@ def estimate_priors_from_posteriors(
     posteriors: np.ndarray,
     rule_priors: np.ndarray,
     classes: tuple[str, ...],
-    tolerance: float = 1e-10,
-    max_iterations: int = 10_000,
+    tolerance: float = EM_TOLERANCE,
+    max_iterations: int = EM_MAX_ITERATIONS,
     confidence: float = 0.95,
 ) -> PriorEstimate:
     """EM for new priors from posteriors (n, K) computed under ``rule_priors``: :func:`estimate_priors_em` on
@@ -104,9 +110,9 @@ def estimate_priors_em(
     rule_priors: np.ndarray,
     classes: tuple[str, ...],
     rows: int,
-    tolerance: float = 1e-10,
-    max_iterations: int = 10_000,
-    confidence: float = 0.95,
+    tolerance: float,
+    max_iterations: int,
+    confidence: float,
 ) -> PriorEstimate:
     """EM for new priors from the ratios a_k(x) = p_k(x) / π_k of ``rows`` rows, kept per partition, for the
     classes with a non-zero rule prior; each pass sums per partition and merges the sums in the fixed tree.
@@ -223,7 +229,8 @@ def estimate_priors(
         rows = ratios.reduce(_row_count, None, add_sums)
         if rows == 0:
             raise DataError(f"{data}: no valid rows to estimate priors from")
-        return estimate_priors_em(ratios, _rule_priors_of(rule), rule.classes, rows, confidence=confidence)
+        rule_priors = _rule_priors_of(rule)
+        return estimate_priors_em(ratios, rule_priors, rule.classes, rows, EM_TOLERANCE, EM_MAX_ITERATIONS, confidence)
 
 
 def rounded_priors(estimate: PriorEstimate) -> dict[str, float]:

@@ -366,3 +366,44 @@ def test_a_file_with_one_valid_row_is_enough_and_none_is_refused(tmp_path: Path)
     rule, data = _loglik_rule(tmp_path, [("nan", "0.0"), ("0.0", "nan")])
     with pytest.raises(DataError, match="no valid rows to estimate priors from"):
         estimate_priors(rule, data)  # type: ignore[arg-type]
+
+
+def test_rule_priors_that_are_not_uniform_divide_the_posteriors() -> None:
+    # references.md SA-2 written out (_longhand_em): the posteriors are computed under the rule's own priors,
+    # p_k(x) ∝ π_k f_k(x), and EM corrects them by π̃_k / π_k.
+    rule_priors = np.array([0.2, 0.3, 0.5])
+    uniform_posteriors, _ = _exact_posteriors(np.array([0.5, 0.3, 0.2]), 2000, seed=21)
+    posteriors = uniform_posteriors * rule_priors
+    posteriors /= posteriors.sum(axis=1, keepdims=True)
+    estimate = estimate_priors_from_posteriors(posteriors, rule_priors, CLASSES)
+    priors, iterations = _longhand_em(posteriors, rule_priors, 1e-10)
+    assert estimate.iterations == iterations
+    np.testing.assert_allclose(estimate.priors, priors, rtol=1e-12)
+
+
+def test_a_file_with_a_class_of_zero_prior_is_estimated_as_its_posteriors_are(tmp_path: Path) -> None:
+    from helpers import loglik_evidence, policy_text, rule_from_text
+
+    from policyc.review.priors import estimate_priors
+
+    classes = ["c0", "c1", "c2"]
+    text = policy_text(
+        classes=classes,
+        priors=[0.4, 0.6, 0.0],
+        actions=["a0", "a1", "a2"],
+        loss=1.0 - np.eye(3),
+        evidence=loglik_evidence(classes),
+    )
+    rule = rule_from_text(text)
+    rng = np.random.default_rng(9)
+    values = rng.normal(size=(40, 3))
+    data = tmp_path / "scores.csv"
+    data.write_text(
+        "ll_c0,ll_c1,ll_c2\n" + "".join(f"{a!r},{b!r},{c!r}\n" for a, b, c in values.tolist()), encoding="utf-8"
+    )
+    seen: list[int] = []
+    estimate = estimate_priors(rule, data, progress=lambda rows, total, stage="": seen.append(rows))
+    assert sum(seen) == 40  # every row read is counted once
+    reference = estimate_priors_from_posteriors(rule.posteriors(values), np.array([0.4, 0.6, 0.0]), tuple(classes))
+    assert estimate.priors[2] == 0.0 and estimate.high[2] == 0.0  # a class the rule rules out stays out
+    np.testing.assert_allclose(estimate.priors, reference.priors, rtol=1e-12)
