@@ -309,3 +309,12 @@ def test_a_lead_below_the_tolerance_at_the_centre_is_not_a_win() -> None:
     loss = np.array([[0.0, 1.0], [1.0, 0.0], [0.5 - 0.75e-9, 0.5 - 0.75e-9]])
     assert not wins_somewhere(loss, 2, margin_tolerance(loss))
     assert winning_margin(loss, 2)[0] == pytest.approx(0.75e-9, abs=1e-12)
+
+
+def test_a_lead_equal_to_the_tolerance_at_a_vertex_is_a_tie() -> None:
+    # Margins at or below the tolerance are ties (the docstring's boundary). The first row leads the second by
+    # 0.5·P(first class), so by exactly 0.5 at the vertex (1, 0), a witness posterior, and by less everywhere else.
+    loss = np.array([[0.0, 1.0], [0.5, 1.0]])
+    assert winning_margin(loss, 0)[0] == pytest.approx(0.5, abs=1e-12)
+    assert not wins_somewhere(loss, 0, tolerance=0.5)
+    assert wins_somewhere(loss, 0, tolerance=0.5 - 1e-6)

@@ -27,6 +27,7 @@ from policyc.compiler import write_artefact
 from policyc.compiler.build import compile_policy
 from policyc.geometry.sampling import simplex_points
 from policyc.review.diff import GateLimits, data_diff, diff, posterior_space_diff, semantic_changes
+from policyc.review.diff.render import render_diff
 from policyc.review.shared.bootstrap import categorical_mean_interval
 from policyc.review.shared.loading import load_rule_or_policy
 
@@ -206,6 +207,17 @@ def test_sobol_points_are_uniform_on_the_simplex(n_classes: int) -> None:
     # Dirichlet(1, ..., 1) has Beta(1, K - 1) marginals (scipy.stats.beta; Devroye 1986, ch. V)
     result = scipy.stats.kstest(points[:, 0], scipy.stats.beta(1, n_classes - 1).cdf)
     assert result.statistic < 0.02
+
+
+def test_the_library_diff_and_the_command_draw_the_same_simplex_points_by_default(tmp_path: Path) -> None:
+    # `policyc diff` documents --simplex-samples 16384 (its --help); the library's diff() without samples must give
+    # the same report, sample count, shares and standard errors alike, or a script and the command would disagree.
+    old = load_text(tmp_path, "old.yaml", three_class_policy(None))
+    new = load_text(tmp_path, "new.yaml", three_class_policy(0.3, revision=2))
+    code, out, _ = run("diff", tmp_path / "old.yaml", tmp_path / "new.yaml", "--format", "json")
+    assert code == 0
+    library = json.loads(render_diff(diff(old, new), "json"))
+    assert library["posterior_space"] == json.loads(out)["posterior_space"]
 
 
 def test_adding_chow_reject_changes_the_simplex_share_one_minus_three_t_squared(tmp_path: Path) -> None:
