@@ -228,12 +228,6 @@ def _row_name(policy: Policy, row: int) -> str:
     return policy.reject.action
 
 
-def _row_path(policy: Policy, row: int) -> tuple[str | int, ...]:
-    if row < len(policy.actions):
-        return (policy.matrix_key, policy.actions[row])
-    return ("reject",)
-
-
 def _dominator(loss: np.ndarray, row: int) -> int | None:
     """A row n that is never worse than ``row`` for any class (Elkan 2001, §1.1, row dominance).
 
@@ -270,7 +264,7 @@ def no_dominated_actions(policy: Policy, context: CheckContext) -> Iterator[Diag
                 "dominated-action",
                 f"action {_row_name(policy, row)!r} is never better than {dominated_by} "
                 "for any class, so it is never chosen",
-                _row_path(policy, row),
+                (policy.matrix_key, policy.actions[row]),
                 "check its losses, or remove the action",
             )
 
@@ -359,7 +353,7 @@ def _unreachable_rows(policy: Policy, loss: np.ndarray) -> Iterator[Diagnostic]:
             yield _warning(
                 "unreachable-action",
                 f"action {_row_name(policy, row)!r} is not the minimum-risk choice for any posterior",
-                _row_path(policy, row),
+                (policy.matrix_key, policy.actions[row]),
                 "lower its losses where it should win, or remove it",
             )
 

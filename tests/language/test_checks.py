@@ -233,3 +233,124 @@ evidence: {kind: log-likelihood, columns: {a: la, b: lb}}
     # no rival: the margin is unbounded and the example posterior is the centre of the simplex
     assert region.reachable and region.margin == float("inf") and region.example_posterior == (0.5, 0.5)
     assert not [d for d in report.diagnostics if d.code in ("unreachable-action", "reject-never-taken")]
+
+
+def test_without_a_base_directory_relative_data_paths_start_at_the_working_directory(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # a policy given as text (no file, so no folder) reads its data where the program runs, as open() would
+    monkeypatch.chdir(tmp_path)
+    (tmp_path / "train.csv").write_text("mass_g,grade\n150.0,ok\n120.0,bad\n", encoding="utf-8")
+    text = """\
+policy: p
+classes: [ok, bad]
+priors: {ok: 0.9, bad: 0.1}
+actions: [accept, refuse]
+loss: {accept: {ok: 0, bad: 10}, refuse: {ok: 1, bad: 0}}
+evidence: {kind: gaussian, features: [mass_g], training: {data: train.csv, label: grade}}
+"""
+    report = check_document(parse_source(text, "p.yaml"), rules=(RULES_BY_NAME["training_data_is_present_and_pinned"],))
+    assert [d.code for d in report.diagnostics] == ["training-data-unpinned"]
+    assert CheckContext().resolve("train.csv") == Path("train.csv")
+    assert CheckContext(tmp_path).resolve("/elsewhere/train.csv") == Path("/elsewhere/train.csv")
+
+
+def test_a_loss_row_named_for_the_reject_action_is_told_where_the_reject_cost_goes() -> None:
+    text = """\
+policy: p
+classes: [ok, bad]
+priors: {ok: 0.9, bad: 0.1}
+actions: [accept, refuse]
+loss:
+  accept: {ok: 0, bad: 10}
+  refuse: {ok: 1, bad: 0}
+  ROW: {ok: 0.5, bad: 0.5}
+reject: {action: defer, cost: 0.5}
+evidence: {kind: log-likelihood, columns: {ok: l_ok, bad: l_bad}}
+"""
+    rule = (RULES_BY_NAME["loss_matrix_names_actions_and_classes"],)
+    (deferring,) = check_document(parse_source(text.replace("ROW", "defer")), rules=rule).diagnostics
+    assert deferring.code == "loss-unknown-action" and "not in the matrix" in (deferring.hint or "")
+    (misspelt,) = check_document(parse_source(text.replace("ROW", "acept")), rules=rule).diagnostics
+    assert misspelt.code == "loss-unknown-action" and "not in the matrix" not in (misspelt.hint or "")
+
+
+def test_a_report_shows_the_lines_it_was_checked_on(tmp_path: Path) -> None:
+    text = "policy: p\nclasses: [a, b]\n"
+    report = check_document(parse_source(text, str(tmp_path / "absent.yaml")))
+    assert report.source_lines == ["policy: p", "classes: [a, b]"]  # from the document, not the (absent) file
+    unreadable = tmp_path / "bad.yaml"
+    unreadable.write_bytes(b"policy: p\nclasses: [a, \xff]\n")  # not UTF-8: no document is built
+    report = check_file(unreadable)
+    assert report.document is None
+    assert report.source_lines == ["policy: p", "classes: [a, \ufffd]"]  # read leniently for the excerpts
+
+
+# --- the numbers the file rules quote and compare ----------------------------------------------------------
+
+CALIBRATED = """\
+policy: p
+classes: [ok, bad]
+priors: {ok: 0.9, bad: 0.1}
+actions: [accept, refuse]
+loss: {accept: {ok: 0, bad: 10}, refuse: {ok: 1, bad: 0}}
+evidence:
+  kind: posterior
+  columns: {ok: p_ok, bad: p_bad}
+  calibrate: {method: isotonic, data: cal.csv, label: y}
+"""
+
+
+def test_isotonic_calibration_is_advised_against_below_a_thousand_rows_of_a_class_not_at_it(tmp_path: Path) -> None:
+    # Niculescu-Mizil & Caruana (ICML 2005), from memory: isotonic maps overfit below about a thousand rows per class
+    rows = ["0.9,0.1,ok"] * check.ISOTONIC_ADVISED_ROWS_PER_CLASS + ["0.2,0.8,bad"] * (
+        check.ISOTONIC_ADVISED_ROWS_PER_CLASS - 1
+    )
+    (tmp_path / "cal.csv").write_text("p_ok,p_bad,y\n" + "\n".join(rows) + "\n", encoding="utf-8")
+    document = parse_source(CALIBRATED, "p.yaml", base_dir=tmp_path)
+    report = check_document(document, rules=(RULES_BY_NAME["calibration_data_has_enough_rows"],))
+    assert [(d.code, "'bad'" in d.message) for d in report.diagnostics] == [("isotonic-few-rows", True)]
+
+
+def test_a_header_of_many_columns_is_listed_by_its_first_thirty(tmp_path: Path) -> None:
+    text = CALIBRATED.replace("method: isotonic", "method: temperature")
+    rule = (RULES_BY_NAME["calibration_file_has_the_columns"],)
+    for n_columns in (30, 31):
+        names = ["p_ok", *(f"c{i}" for i in range(n_columns - 2)), "y"]  # no p_bad
+        (tmp_path / "cal.csv").write_text(",".join(names) + "\n", encoding="utf-8")
+        report = check_document(parse_source(text, "p.yaml", base_dir=tmp_path), rules=rule)
+        (missing,) = report.diagnostics
+        listed = ", ".join(map(repr, names[:30])) + (" and 1 more" if n_columns == 31 else "")
+        assert missing.code == "calibration-column-missing" and missing.message.endswith(f"its columns are {listed}")
+
+
+def test_a_missing_data_path_is_quoted_whole_up_to_200_characters_then_by_its_ends() -> None:
+    # common practice, no source: a long generated path would drown the message, its two ends tell it apart
+    text = CALIBRATED.replace("cal.csv", "PATH")
+    rule = (RULES_BY_NAME["calibration_data_is_present_and_pinned"],)
+    for length in (200, 201):
+        path = "".join(chr(ord("a") + i % 26) for i in range(length - 4)) + ".csv"
+        policy = build_policy(parse_source(text.replace("PATH", path)))
+        (missing,) = run_rules(policy, CheckContext(), rules=rule)
+        shown = path if length == 200 else f"{path[:100]}...{path[-50:]}"
+        assert missing.code == "calibration-data-missing" and f"data {shown!r} does not exist" in missing.message
+
+
+def test_diagnostics_come_in_source_order_whatever_order_the_rules_run_in() -> None:
+    # evidence is written first here, while its rule runs after the class and prior rules
+    text = """\
+policy: p
+evidence: {kind: log-likelihood, columns: {ok: l_ok, bad: l_ok}}
+priors: {ok: 0.5, bad: 0.6}
+classes: [ok, bad]
+actions: [accept, refuse]
+loss:
+  accept: {ok: 0, bad: 10}
+  refuse: {ok: 1, bad: 0}
+"""
+    report = check_document(parse_source(text))
+    assert [(d.code, d.line) for d in report.diagnostics if d.is_error] == [
+        ("duplicate-column", 2),
+        ("duplicate-column", 2),
+        ("priors-do-not-sum-to-one", 3),
+    ]
