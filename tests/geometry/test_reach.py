@@ -131,7 +131,7 @@ def test_winning_margin_agrees_with_a_dense_grid(case: tuple[np.ndarray, float |
 
 
 def policy_for(loss: np.ndarray, cost: float | None) -> Policy:
-    classes = ("c0", "c1", "c2")
+    classes = tuple(f"c{j}" for j in range(loss.shape[1]))
     actions = tuple(f"a{i}" for i in range(loss.shape[0]))
     data: dict[str, object] = {
         "policy": "generated",
@@ -318,3 +318,15 @@ def test_a_lead_equal_to_the_tolerance_at_a_vertex_is_a_tie() -> None:
     assert winning_margin(loss, 0)[0] == pytest.approx(0.5, abs=1e-12)
     assert not wins_somewhere(loss, 0, tolerance=0.5)
     assert wins_somewhere(loss, 0, tolerance=0.5 - 1e-6)
+
+
+def test_a_lead_of_exactly_the_tolerance_is_a_tie() -> None:
+    # Losses of a few 1e-9 put the tolerance at its floor, 1e-9. The first two actions win by 4e-9 at the vertices of
+    # the last two classes; the third leads them by 4e-9/2 - 1e-9 = 1e-9 at (½, ½, 0, 0), its best point. Every step
+    # is exact in binary, so that lead is the tolerance to the bit: a tie (margins at or below the tolerance are ties).
+    unit = 1e-9
+    loss = np.array([[0.0, 4, 0, 4], [4, 0, 4, 0], [1, 1, 4, 4]]) * unit
+    assert winning_margin(loss, 2)[0] == margin_tolerance(loss) == unit
+    regions = action_regions(policy_for(loss, None))
+    assert regions is not None and [region.reachable for region in regions] == [True, True, False]
+    assert unreachable(loss) == [("loss", "a2")]

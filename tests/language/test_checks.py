@@ -354,3 +354,66 @@ loss:
         ("duplicate-column", 2),
         ("priors-do-not-sum-to-one", 3),
     ]
+
+
+def test_a_dominated_action_is_told_which_row_beats_it() -> None:
+    # Elkan 2001 §1.1 (references.md EL-4): a row never cheaper than another for any class is never chosen
+    text = ZERO_ONE_THREE.replace("say_c: {a: 1, b: 1, c: 0}", "say_c: {a: CA, b: 1, c: CC}")
+    (by_deferring,) = messages(text.replace("CA", "1").replace("CC", "0.9").replace("COST", "0.5"), "dominated-action")
+    assert "'say_c' is never better than deferring for any class" in by_deferring  # 0.5 ≤ (1, 1, 0.9)
+    (by_action,) = messages(text.replace("CA", "1").replace("CC", "1").replace("COST", "0.95"), "dominated-action")
+    assert "'say_c' is never better than action 'say_a' for any class" in by_action  # (0, 1, 1) ≤ (1, 1, 1), the first
+
+
+TWO_BY_TWO = """\
+policy: p
+classes: [ok, bad]
+priors: {ok: 0.5, bad: 0.5}
+actions: [accept, refuse]
+loss:
+  accept: {ok: 0, bad: C01}
+  refuse: {ok: C10, bad: 0}
+REJECT
+evidence: {kind: log-likelihood, columns: {ok: l_ok, bad: l_bad}}
+"""
+
+
+def two_by_two(c01: float, c10: float, cost: float | None = None) -> str:
+    reject = "" if cost is None else f"reject: {{action: defer, cost: {cost!r}}}"
+    return TWO_BY_TWO.replace("C01", repr(c01)).replace("C10", repr(c10)).replace("REJECT", reject)
+
+
+def test_losses_up_to_six_orders_of_magnitude_apart_are_analysed_and_no_further() -> None:
+    # LOSS_SPREAD_LIMIT = 1e6, common practice, no source: beyond it the tie tolerance swallows the smallest losses
+    assert messages(two_by_two(1.0, 1e6), "loss-not-analysable") == []
+    (message,) = messages(two_by_two(1.0, 1.5e6), "loss-not-analysable")
+    assert "the losses span 1 to 1.5e+06, more than 1e+06 apart" in message
+
+
+def test_reject_never_taken_quotes_v_even_when_the_cost_ties_it_from_below() -> None:
+    # references.md CH-6: V = c01 c10 / (c01 + c10) for a zero-diagonal 2x2. A cost 9e-10 below V is within the tie
+    # tolerance (1e-9), so deferring is never taken; the message quotes V itself (0.123457), not the cost (0.123456).
+    c = 2 * 0.1234565 + 1e-9  # V = c/2 = 0.1234565 + 5e-10
+    value = c * c / (c + c)
+    (message,) = messages(two_by_two(c, c, value - 9e-10), "reject-never-taken")
+    assert f"is at least V = {value:.6g}," in message and f"{value:.6g}" == "0.123457"
+
+
+def test_a_transposed_looking_matrix_names_the_cheapest_action_for_the_class() -> None:
+    text = """\
+policy: p
+classes: [a, b, c]
+priors: {a: 0.4, b: 0.3, c: 0.3}
+actions: [a, b, c]
+loss:
+  a: {a: 5, b: 0, c: 1}
+  b: {a: 0, b: 5, c: 1}
+  c: {a: 10, b: 10, c: 0}
+evidence: {kind: log-likelihood, columns: {a: la, b: lb, c: lc}}
+"""
+    # when the truth is a, action b costs 0, the least, and action c 10, the most
+    found = messages(text, "loss-may-be-transposed")
+    assert found == [
+        "when the truth is 'a', action 'a' costs more than 'b'; loss is keyed loss[action][class]",
+        "when the truth is 'b', action 'b' costs more than 'a'; loss is keyed loss[action][class]",
+    ]
