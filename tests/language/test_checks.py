@@ -417,3 +417,34 @@ evidence: {kind: log-likelihood, columns: {a: la, b: lb, c: lc}}
         "when the truth is 'a', action 'a' costs more than 'b'; loss is keyed loss[action][class]",
         "when the truth is 'b', action 'b' costs more than 'a'; loss is keyed loss[action][class]",
     ]
+
+
+def test_a_note_is_neither_an_error_nor_a_warning_and_rules_collect_every_error_by_default(tmp_path: Path) -> None:
+    (tmp_path / "train.csv").write_text("mass_g,grade\n150.0,ok\n120.0,bad\n", encoding="utf-8")
+    text = """\
+policy: p
+classes: [ok, bad]
+priors: {ok: 0.9, bad: 0.1}
+actions: [accept, refuse]
+loss: {accept: {ok: 0, bad: 10}, refuse: {ok: 1, bad: 0}}
+evidence: {kind: gaussian, features: [mass_g], training: {data: train.csv, label: grade}}
+"""
+    noted = check_document(parse_source(text, "p.yaml", base_dir=tmp_path))
+    assert [d.severity for d in noted.diagnostics] == [Severity.INFO]  # the data is not pinned
+    assert not noted.has_errors and not noted.has_warnings
+    warned = check_document(parse_source(text.replace("bad: 0}}", "bad: 20}}"), "p.yaml", base_dir=tmp_path))
+    assert warned.has_warnings and not warned.has_errors  # refuse now never beats accept: a warning
+    broken = build_policy(parse_source(text.replace("classes: [ok, bad]", "classes: [ok, ok]")))
+    assert len([d for d in run_rules(broken, CheckContext(tmp_path)) if d.is_error]) > 1
+
+
+def test_diagnostics_on_one_line_come_in_column_order_and_a_file_check_collects_them_all(tmp_path: Path) -> None:
+    # the prior rule finds the unknown class before the sum, but the sum is reported at the mapping's opening brace
+    text = ZERO_ONE_THREE.replace("priors: {a: 0.4, b: 0.3, c: 0.3}", "priors: {a: 0.4, b: 0.3, c: 0.3, zzz: 0.1}")
+    path = tmp_path / "p.yaml"
+    path.write_text(text.replace("COST", "0.5"), encoding="utf-8")
+    report = check_file(path)
+    errors = [(d.code, d.line, d.col) for d in report.diagnostics if d.is_error]
+    line = text.splitlines()[2]
+    brace, unknown = line.index("{") + 1, line.index("zzz: 0.1") + len("zzz: ") + 1  # 1-based columns
+    assert errors == [("priors-do-not-sum-to-one", 3, brace), ("prior-unknown-class", 3, unknown)]
