@@ -8,10 +8,21 @@ risk, ties, the posterior-row checks, one-action rules and the invalid-rows mess
 
 from __future__ import annotations
 
+import threading
+from typing import Any
+
 import numpy as np
 import pytest
 import scipy.special
-from helpers import gaussian_rule, loglik_evidence, policy_text, posterior_evidence, random_covariances, rule_from_text
+from helpers import (
+    gaussian_rule,
+    loglik_evidence,
+    policy_text,
+    posterior_evidence,
+    random_covariances,
+    random_spd,
+    rule_from_text,
+)
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.stats import multivariate_normal
@@ -63,6 +74,23 @@ def test_posteriors_match_scipy_log_densities_through_a_softmax(covariance: str)
         [multivariate_normal(means[k], covariances[k]).logpdf(X) for k in range(n_classes)]
     ) + np.asarray(params["log_priors"])
     np.testing.assert_allclose(rule.posteriors(X), scipy.special.softmax(joint, axis=1), rtol=1e-9, atol=1e-14)
+
+
+@pytest.mark.parametrize("shared", [(0, 0, 1), (0, 1, 1), (0, 1, 0)])
+def test_a_covariance_shared_by_some_classes_only_is_not_tied(shared: tuple[int, int, int]) -> None:
+    # only a covariance common to every class cancels from the scores (Fukunaga 1990, eq. 3.115): with two
+    # classes sharing one and the third apart, the posteriors are still scipy's log-densities through a softmax
+    # (references.md MV-1, MV-3)
+    rng = np.random.default_rng(37)
+    distinct = [random_spd(rng, 3), random_spd(rng, 3)]
+    covariances = np.array([distinct[i] for i in shared])
+    means = rng.normal(scale=2.0, size=(3, 3))
+    priors = np.array([0.2, 0.3, 0.5])
+    rule = gaussian_rule(means, covariances, priors, 1.0 - np.eye(3))
+    X = rng.normal(scale=3.0, size=(200, 3))
+    joint = np.column_stack([multivariate_normal(means[k], covariances[k]).logpdf(X) for k in range(3)])
+    expected = scipy.special.softmax(joint + np.log(priors), axis=1)
+    np.testing.assert_allclose(rule.posteriors(X), expected, rtol=1e-9, atol=1e-14)
 
 
 @settings(max_examples=30, deadline=None)
@@ -129,6 +157,20 @@ def test_threads_split_whole_chunks_and_give_the_same_bits(threads: int) -> None
     rule = random_rule(13, "full")
     X = sample(rule, 14, PARALLEL_MIN_ROWS + 3 * kernel.CHUNK_ROWS + 17)  # the pool starts at PARALLEL_MIN_ROWS
     np.testing.assert_array_equal(rule.decide(X, threads=threads), rule.decide(X, threads=1))
+
+
+def test_a_failure_in_a_worker_thread_is_raised_on_the_calling_thread(monkeypatch: pytest.MonkeyPatch) -> None:
+    rule = random_rule(13, "full")
+    decide_rows = kernel.decide_rows
+
+    def failing_off_the_main_thread(*args: Any) -> tuple[np.ndarray, np.ndarray]:
+        if threading.current_thread() is not threading.main_thread():
+            raise MemoryError("a worker ran out of memory")
+        return decide_rows(*args)
+
+    monkeypatch.setattr(kernel, "decide_rows", failing_off_the_main_thread)
+    with pytest.raises(MemoryError, match="a worker ran out of memory"):
+        rule.decide(sample(rule, 15, PARALLEL_MIN_ROWS), threads=2)
 
 
 def test_threads_must_be_positive() -> None:
@@ -322,3 +364,162 @@ def test_one_row_far_enough_to_overflow_some_classes_decides_as_the_batch(value:
     batch = rule.explain(np.vstack([row, row]))
     assert rule.decide(row)[0] == batch.action[0]
     assert rule.explain(row).valid[0] == batch.valid[0]
+
+
+# --- what the batch path shares with its callers ------------------------------------------------------
+
+
+@pytest.mark.parametrize("covariance", FORMS)
+def test_gaussian_log_likelihoods_are_scipy_log_densities_and_non_finite_rows_are_invalid(covariance: str) -> None:
+    # ln N(x; μ_k, Σ_k) = scipy.stats.multivariate_normal.logpdf (references.md MV-1)
+    rng = np.random.default_rng(23)
+    means = rng.normal(scale=2.0, size=(3, 4))
+    covariances = random_covariances(rng, 3, 4, covariance)
+    rule = gaussian_rule(means, covariances, [0.2, 0.3, 0.5], 1.0 - np.eye(3), covariance=covariance)
+    X = rng.normal(scale=3.0, size=(50, 4))
+    X[3, 1], X[7, 2] = np.nan, -np.inf
+    log_likelihoods, valid = kernel.gaussian_log_likelihoods(X, dict(rule.params))
+    assert np.flatnonzero(~valid).tolist() == [3, 7]
+    expected = np.column_stack([multivariate_normal(means[k], covariances[k]).logpdf(X[valid]) for k in range(3)])
+    np.testing.assert_allclose(log_likelihoods[valid], expected, rtol=1e-10)
+
+
+def novelty_rule(threshold: float, priors: tuple[float, float] = (0.5, 0.5)) -> Rule:
+    """Two unit-variance classes at 0 and 10 on one feature, with the novelty threshold set to ``threshold``."""
+    rule = gaussian_rule(
+        np.array([[0.0], [10.0]]), np.ones((2, 1, 1)), priors, 1.0 - np.eye(2), reject_cost=0.4, novelty_coverage=0.9
+    )
+    return Rule(rule.manifest, dict(rule.params) | {"novelty_threshold": np.array(threshold)})
+
+
+def test_a_row_exactly_at_the_novelty_threshold_is_inside_the_region() -> None:
+    # the region is D² ≤ χ²_d⁻¹(q), the complement of P(D² > χ²_d⁻¹(q)) = 1 - q (references.md NOV-2): a row
+    # with D² equal to the threshold is not novel. At x = -2 and 12, D² = 4 exactly (the centre 5 and the
+    # means are small integers), against 144 for the other class.
+    rule = novelty_rule(4.0)
+    X = np.array([[-2.0], [12.0], [-2.5], [12.5]])
+    explanation = rule.explain(X)
+    assert explanation.reason.tolist() == ["min-risk", "min-risk", "novelty", "novelty"]
+    assert rule.decide_names(X).tolist() == ["a0", "a1", "reject", "reject"]
+    # a novelty-deferred row's runner-up is the action of minimum risk, and it has no margin (Explanation)
+    assert explanation.runner_up_name[2:].tolist() == ["a0", "a1"] and np.isnan(explanation.margin[2:]).all()
+    assert np.isfinite(explanation.margin[:2]).all()
+    assert [rule.decide_one({"x0": x}) for x in X[:, 0].tolist()] == ["a0", "a1", "reject", "reject"]
+
+
+def test_a_class_with_a_zero_prior_has_no_region() -> None:
+    # a row inside only the zero-prior class's region is outside every region that counts (NOV-1)
+    rule = novelty_rule(4.0, priors=(1.0, 0.0))
+    assert rule.explain(np.array([[0.0], [10.0]])).reason.tolist() == ["min-risk", "novelty"]
+
+
+def test_an_invalid_row_is_never_novel() -> None:
+    # posteriors_and_risks: "rows that are not valid hold NaN and are never novel", though +inf is beyond
+    # every threshold
+    rule = novelty_rule(4.0)
+    X = np.array([[np.inf], [-np.inf], [np.nan], [100.0]])
+    _, _, valid, novel = kernel.posteriors_and_risks(X, rule.evidence, rule._plan)
+    assert valid.tolist() == [False, False, False, True]
+    assert novel.tolist() == [False, False, False, True]
+    assert rule.explain(X).reason.tolist() == ["invalid", "invalid", "invalid", "novelty"]
+
+
+def test_one_row_with_an_impossible_class_decides_as_the_batch() -> None:
+    # ln p(x|k) = -inf: class k is impossible, the row is valid (only NaN and +inf are invalid input). Priors
+    # (0.2, 0.3, 0.5): the first row's P = (2/7, 0, 5/7) has least risk 2/7 > 0.2, so it is rejected (Chow 1970,
+    # references.md CH-1); the others leave one possible class (hand-computed).
+    rule = loglik_rule(ZERO_ONE_3, 0.2)
+    X = np.array([[0.0, -np.inf, 0.0], [-np.inf, -np.inf, 1.0], [-np.inf, 0.0, -np.inf]])
+    batch = rule.explain(X)
+    assert batch.valid.all()
+    assert [rule.decide(row[None, :])[0] for row in X] == batch.action.tolist() == [3, 2, 1]
+
+
+@pytest.mark.parametrize("covariance", FORMS)
+def test_one_row_far_from_every_class_decides_as_the_batch(covariance: str) -> None:
+    # 50 to 1000 standard deviations out the joint densities underflow; both paths work in the log domain
+    rule = random_rule(29, covariance)
+    X = np.random.default_rng(30).normal(size=(40, len(rule.features)))
+    X *= np.repeat([50.0, 200.0, 1e3, 1e4], 10)[:, None] / np.linalg.norm(X, axis=1, keepdims=True)
+    batch = rule.explain(X)
+    assert batch.valid.all()
+    assert [rule.decide(row[None, :])[0] for row in X] == batch.action.tolist()
+
+
+DIRICHLET = {
+    "calibration_weights": np.array([[1.5, 0.2, -0.1], [0.3, 0.8, 0.0], [0.0, -0.4, 1.2]]),
+    "calibration_bias": np.array([0.1, -0.2, 0.3]),
+}
+
+
+def mapped_posterior_rule(calibration: dict[str, np.ndarray], renormalise: bool = False) -> Rule:
+    """Posterior evidence with trained priors (0.5, 0.3, 0.2) and deployment priors (0.2, 0.3, 0.5), through the
+    calibration map's arrays (none: no map); ``renormalise`` divides each row by its sum first."""
+    rule = loglik_rule(ZERO_ONE_3, 0.3)
+    manifest = dict(rule.manifest) | {"evidence": {"kind": "posterior"}}
+    params = {
+        "log_priors": np.log([0.2, 0.3, 0.5]),
+        "loss": np.asarray(rule.params["loss"]),
+        "log_trained_priors": np.log([0.5, 0.3, 0.2]),
+        "sum_tolerance": np.array(1e-6),
+        "renormalise": np.array(float(renormalise)),
+    }
+    floor = {"calibration_floor": np.array(1e-12)} if calibration else {}
+    return Rule(manifest, params | floor | calibration)
+
+
+def renormalising_rule(renormalise: bool) -> Rule:
+    """A Dirichlet map ln q = W ln p + b (Kull et al. 2019), whose output depends on the scale of p."""
+    return mapped_posterior_rule(DIRICHLET, renormalise)
+
+
+def test_renormalise_divides_each_row_by_its_sum() -> None:
+    # docs/math.md §5.2: with renormalise, a non-negative row with a positive sum is divided by its sum; so c·p
+    # decides as p itself does under the strict rule. The map is not invariant to the scale of p (W 1 is not
+    # constant), so skipping the division, or scaling instead of dividing, changes the posteriors.
+    strict, renormalising = renormalising_rule(False), renormalising_rule(True)
+    p = np.random.default_rng(31).dirichlet(np.ones(3), size=20)
+    expected = strict.posteriors(p)
+    assert np.isfinite(expected).all()
+    for scale in (1e-3, 0.5, 1.0, 7.0):
+        np.testing.assert_allclose(renormalising.posteriors(scale * p), expected, rtol=1e-12)
+    assert not np.allclose(strict.posteriors(np.clip(2.0 * p, 0.0, 1.0)), expected)  # the map sees the scale
+
+
+def test_renormalise_accepts_zeros_and_refuses_negative_entries_and_a_zero_sum() -> None:
+    # docs/math.md §5.2: valid when the entries are non-negative with a positive sum
+    rule = renormalising_rule(True)
+    X = np.array([[0.0, 2.0, 6.0], [3.0, 0.0, 0.0], [-1e-9, 0.5, 0.5], [0.0, 0.0, 0.0], [np.nan, 1.0, 1.0]])
+    assert rule.explain(X).valid.tolist() == [True, True, False, False, False]
+    np.testing.assert_allclose(rule.posteriors(X[:1]), renormalising_rule(False).posteriors(X[:1] / 8.0), rtol=1e-12)
+
+
+def test_the_prior_shift_divides_by_the_trained_priors() -> None:
+    # Saerens, Latinne & Decaestecker 2002 (references.md SA-1): p̃_k ∝ (π̃_k / π_k) p_k; without a map
+    p = np.array([[0.6, 0.3, 0.1], [0.2, 0.5, 0.3]])
+    shifted = p * np.array([0.2, 0.3, 0.5]) / np.array([0.5, 0.3, 0.2])
+    expected = shifted / shifted.sum(axis=1, keepdims=True)
+    np.testing.assert_allclose(mapped_posterior_rule({}).posteriors(p), expected, rtol=1e-12)
+
+
+def test_a_temperature_map_raises_the_probabilities_to_one_over_t() -> None:
+    # references.md CAL-1 (Guo et al. 2017): ln q = ln max(p, ε) / T + const, so q ∝ p^(1/T); T = 2 here,
+    # then the prior shift of SA-1. A zero probability counts as ε = 1e-12 (docs/math.md §5.2.1).
+    rule = mapped_posterior_rule({"calibration_inverse_temperature": np.array(0.5)})
+    p = np.array([[0.6, 0.3, 0.1], [0.2, 0.5, 0.3], [0.0, 0.36, 0.64]])
+    shifted = np.sqrt(np.maximum(p, 1e-12)) * np.array([0.2, 0.3, 0.5]) / np.array([0.5, 0.3, 0.2])
+    np.testing.assert_allclose(rule.posteriors(p), shifted / shifted.sum(axis=1, keepdims=True), rtol=1e-12)
+
+
+def test_invalid_rows_message_names_columns_for_the_first_ten_rows_in_the_caller_numbering() -> None:
+    prepared = np.zeros((14, 2))
+    prepared[1:13, 1] = np.nan  # twelve rows with a NaN, and row 13 finite but invalid (say, a posterior sum)
+    valid = np.isfinite(prepared).all(axis=1)
+    valid[13] = False
+    message = kernel.invalid_rows_message(valid, 1, prepared=prepared, features=("x", "y"))
+    named = [f"row {row + 1}: 'y'" for row in range(1, 11)]
+    assert message.endswith("(" + "; ".join(named) + ")")
+    assert "and 3 more (1-based)" in message
+    finite_only = kernel.invalid_rows_message(~np.eye(14, dtype=bool)[13], prepared=prepared, features=("x", "y"))
+    assert finite_only.endswith("impossible evidence")
+    assert kernel.invalid_rows_message(valid, prepared=prepared).endswith("impossible evidence")

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import io
 import json
+import re
 import subprocess
 import sys
 import zipfile
@@ -29,6 +30,8 @@ from helpers import (
 from policyc.compiler import write_artefact
 from policyc.compiler.build import compile_policy
 from policyc.runtime import FORMAT_VERSION, ArtefactError, InputError, Rule, load_rule
+from policyc.runtime import artefact as artefact_module
+from policyc.runtime import rule as rule_module
 from policyc.runtime.artefact import content_hash, pack_members
 
 # --- fixtures and artefact surgery ------------------------------------------------------------------
@@ -190,6 +193,17 @@ def test_unreadable_and_non_archive_files_are_refused(tmp_path: Path) -> None:
         load_rule(junk)
 
 
+def test_a_file_larger_than_the_cap_is_refused_by_its_size(
+    packhouse_file: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # load_rule reads one byte beyond the cap, so the decoder sees that the file is too large, not a cut archive
+    size = packhouse_file.stat().st_size
+    monkeypatch.setattr(rule_module, "MAX_RULE_BYTES", size - 1)
+    monkeypatch.setattr(artefact_module, "MAX_RULE_BYTES", size - 1)
+    with pytest.raises(ArtefactError, match=f"{size} bytes is larger than a rule file may be"):
+        load_rule(packhouse_file)
+
+
 # --- the decision API ----------------------------------------------------------------------------------
 
 
@@ -309,6 +323,20 @@ def test_invalid_rows_raise_naming_the_rows_under_invalid_input_error(packhouse:
         with pytest.raises(InputError, match=r"row\(s\) 2, 7 \(0-based\)"):
             method(X)
     assert np.array_equal(strict.decide(incoming[:8]), packhouse.decide(incoming[:8]))
+
+
+def test_decide_valid_never_raises_and_sends_invalid_rows_to_the_last_action(
+    packhouse: Rule, incoming: np.ndarray
+) -> None:
+    strict = Rule(dict(packhouse.manifest) | {"invalid_input": "error"}, dict(packhouse.params))
+    X = incoming[:5].copy()
+    X[2, 1] = np.nan
+    with pytest.raises(InputError):
+        strict.decide(X)
+    actions, valid = strict.decide_valid(X)
+    assert valid.tolist() == [True, True, False, True, True]
+    assert actions[2] == len(strict.actions) - 1
+    np.testing.assert_array_equal(actions[valid], packhouse.decide(incoming[[0, 1, 3, 4]]))
 
 
 def test_log_likelihood_evidence_treats_plus_infinity_as_invalid_and_minus_infinity_as_impossible() -> None:
@@ -437,3 +465,143 @@ def test_a_service_start_loads_neither_decimal_nor_numpy_typing_yet_reads_decima
         [sys.executable, "-c", SERVICE_START, str(packhouse_file)], capture_output=True, text=True, check=True
     )
     assert json.loads(result.stdout) == {"loaded": [], "same": True}
+
+
+# --- a fitted isotonic map's arrays ------------------------------------------------------------------
+
+
+def isotonic_rule(thresholds: list[float], values: list[float], ends: list[float]) -> Rule:
+    """Three classes under equal priors, posterior evidence through per-class isotonic maps m_k: class k's points
+    are thresholds[ends[k - 1]:ends[k]] and values likewise."""
+    classes = ["c0", "c1", "c2"]
+    text = policy_text(
+        classes=classes,
+        priors=[1 / 3] * 3,
+        actions=["a0", "a1", "a2"],
+        loss=1.0 - np.eye(3),
+        evidence=posterior_evidence(classes, [1 / 3] * 3),
+        reject_cost=0.4,
+        invalid_input="reject",
+    )
+    base = rule_from_text(text)
+    arrays = {"calibration_thresholds": thresholds, "calibration_values": values, "calibration_ends": ends}
+    params = dict(base.params) | {"calibration_floor": np.array(1e-12)} | {k: np.array(v) for k, v in arrays.items()}
+    return Rule(base.manifest, params)
+
+
+# class 0 has a single point (a constant map), classes 1 and 2 two each
+THRESHOLDS = [0.5, 0.2, 0.8, 0.3, 0.9]
+VALUES = [0.4, 0.0, 1.0, 0.0, 1.0]
+
+
+def test_an_isotonic_map_interpolates_each_class_on_its_own_points() -> None:
+    # docs/math.md §5.2.1 (Zadrozny & Elkan 2002): q_k = m_k(p_k) / Σ_j m_j(p_j), m_k linear between its points
+    # and clipped outside. Row (0.2, 0.5, 0.3): m = (0.4, 0.5, 0.0), so q = (4/9, 5/9, 0) (hand-computed).
+    rule = isotonic_rule(THRESHOLDS, VALUES, [1.0, 3.0, 5.0])
+    np.testing.assert_allclose(rule.posteriors(np.array([[0.2, 0.5, 0.3]])), [[4 / 9, 5 / 9, 0.0]], rtol=1e-14)
+
+
+@pytest.mark.parametrize(
+    ("ends", "why"),
+    [
+        ([1.5, 3.0, 5.0], "a piece end between two points"),
+        ([1.0, 1.0, 5.0], "a class without points"),
+        ([0.0, 3.0, 5.0], "the first class without points"),
+        ([1.0, 3.0, 4.0], "a point left over"),
+        ([1.0, 3.0, 6.0], "more points claimed than there are"),
+        ([1.0, 2.0, 3.0, 5.0], "one piece too many"),
+        ([1.0, 5.0], "one piece too few"),
+    ],
+)
+def test_isotonic_piece_ends_that_do_not_split_the_points_by_class_are_refused(ends: list[float], why: str) -> None:
+    with pytest.raises(ArtefactError, match="does not split the isotonic points by class"):
+        isotonic_rule(THRESHOLDS, VALUES, ends)
+
+
+def test_isotonic_points_that_are_not_a_list_are_refused() -> None:
+    with pytest.raises(ArtefactError, match="does not split the isotonic points by class"):
+        isotonic_rule([[t] for t in THRESHOLDS], [[v] for v in VALUES], [1.0, 3.0, 5.0])  # type: ignore[misc]
+
+
+@pytest.mark.parametrize("drop", ["calibration_thresholds", "calibration_values", "calibration_ends"])
+def test_an_incomplete_isotonic_map_is_refused(drop: str) -> None:
+    rule = isotonic_rule(THRESHOLDS, VALUES, [1.0, 3.0, 5.0])
+    params = {k: v for k, v in rule.params.items() if k != drop}
+    with pytest.raises(ArtefactError, match="incomplete or of more than one method"):
+        Rule(rule.manifest, params)
+
+
+@pytest.mark.parametrize(
+    "other", [{"calibration_inverse_temperature": 0.5}, {"calibration_bias": [0.0, 0.0, 0.0]}], ids=["whole", "part"]
+)
+def test_an_isotonic_map_beside_another_map_or_part_of_one_is_refused(other: dict[str, Any]) -> None:
+    rule = isotonic_rule(THRESHOLDS, VALUES, [1.0, 3.0, 5.0])
+    params = dict(rule.params) | {name: np.array(value) for name, value in other.items()}
+    with pytest.raises(ArtefactError, match="incomplete or of more than one method"):
+        Rule(rule.manifest, params)
+
+
+# --- what a Rule refuses to be built from ------------------------------------------------------------
+
+
+def small_rule(**overrides: Any) -> Rule:
+    """Two classes on log-likelihood columns, 0-1 loss, reject at 0.2."""
+    return rule_from_text(two_class_text(reject_cost=0.2, invalid_input="reject", **overrides))
+
+
+MANIFEST_REFUSALS = {
+    "unknown evidence": ({"evidence": {"kind": "histogram"}}, "'evidence.kind' is 'histogram', unknown here"),
+    "evidence not a mapping": ({"evidence": "log-likelihood"}, "'evidence.kind' is None, unknown here"),
+    "unknown invalid_input": ({"invalid_input": "skip"}, "field 'invalid_input' is 'skip'"),
+    "reject action not last": ({"reject_action": "a0"}, "'reject_action' must name the last action"),
+    "reject without a reject action": ({"reject_action": None}, "'invalid_input' is 'reject' but there is no"),
+    "classes not a list": ({"classes": "c0"}, "'classes' must be a non-empty list of names"),
+    "no classes": ({"classes": []}, "'classes' must be a non-empty list of names"),
+    "an empty class name": ({"classes": ["c0", ""]}, "'classes' must be a non-empty list of names"),
+    "a class name not text": ({"classes": ["c0", 1]}, "'classes' must be a non-empty list of names"),
+    "a repeated action": ({"actions": ["a0", "a0", "reject"]}, "'actions' repeats a name"),
+}
+
+
+@pytest.mark.parametrize("case", MANIFEST_REFUSALS)
+def test_a_manifest_that_does_not_describe_its_arrays_is_refused_by_name(case: str) -> None:
+    rule = small_rule()
+    change, message = MANIFEST_REFUSALS[case]
+    with pytest.raises(ArtefactError, match=re.escape(message)):
+        Rule(dict(rule.manifest) | change, dict(rule.params))
+
+
+ARRAY_REFUSALS = {
+    "loss missing": ({"loss": None}, "arrays ['loss'] are missing for evidence 'log-likelihood'"),
+    "loss of another shape": ({"loss": np.zeros((3, 3))}, "array 'loss' has shape (3, 3), expected (3, 2)"),
+    "novelty without Gaussians": ({"novelty_threshold": np.array(4.0)}, "needs gaussian evidence and a reject action"),
+    "-inf loss": ({"loss": np.array([[0.0, 1.0], [1.0, 0.0], [0.2, -np.inf]])}, "'loss' holds NaN or infinite"),
+    "+inf prior": ({"log_priors": np.array([np.inf, 0.0])}, "'log_priors' holds NaN or infinite"),
+    "NaN prior": ({"log_priors": np.array([np.nan, 0.0])}, "'log_priors' holds NaN or infinite"),
+}
+
+
+@pytest.mark.parametrize("case", ARRAY_REFUSALS)
+def test_arrays_that_do_not_fit_the_manifest_are_refused_by_name(case: str) -> None:
+    rule = small_rule()
+    change, message = ARRAY_REFUSALS[case]
+    params = {name: array for name, array in (dict(rule.params) | change).items() if array is not None}
+    with pytest.raises(ArtefactError, match=re.escape(message)):
+        Rule(rule.manifest, params)
+
+
+def test_a_prior_of_zero_is_allowed_and_its_class_never_chosen() -> None:
+    # ln 0 = -inf is the one non-finite value a log-probability array may hold
+    rule = small_rule()
+    zero = Rule(rule.manifest, dict(rule.params) | {"log_priors": np.array([-np.inf, 0.0])})
+    assert zero.posteriors(np.array([[5.0, -5.0]])).tolist() == [[0.0, 1.0]]
+
+
+@pytest.mark.parametrize(("reject", "threshold"), [(False, np.array(4.0)), (True, np.array([4.0]))])
+def test_a_novelty_threshold_needs_a_reject_action_and_one_value(reject: bool, threshold: np.ndarray) -> None:
+    rule = gaussian_rule(
+        np.array([[0.0], [10.0]]), np.ones((2, 1, 1)), [0.5, 0.5], 1.0 - np.eye(2), 0.4 if reject else None
+    )
+    message = "array 'novelty_threshold' has shape (1,), expected ()" if reject else "needs gaussian evidence and a"
+    with pytest.raises(ArtefactError, match=re.escape(message)):
+        Rule(rule.manifest, dict(rule.params) | {"novelty_threshold": threshold})
