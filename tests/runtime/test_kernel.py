@@ -9,6 +9,7 @@ risk, ties, the posterior-row checks, one-action rules and the invalid-rows mess
 from __future__ import annotations
 
 import threading
+import tracemalloc
 from typing import Any
 
 import numpy as np
@@ -159,18 +160,66 @@ def test_threads_split_whole_chunks_and_give_the_same_bits(threads: int) -> None
     np.testing.assert_array_equal(rule.decide(X, threads=threads), rule.decide(X, threads=1))
 
 
-def test_a_failure_in_a_worker_thread_is_raised_on_the_calling_thread(monkeypatch: pytest.MonkeyPatch) -> None:
-    rule = random_rule(13, "full")
+def blocks_by_thread(monkeypatch: pytest.MonkeyPatch, fail_off_the_main_thread: bool = False) -> list[tuple[bool, int]]:
+    """Record (on the calling thread?, rows) of every block the thread pool hands to kernel.decide_rows."""
+    calls: list[tuple[bool, int]] = []
     decide_rows = kernel.decide_rows
 
-    def failing_off_the_main_thread(*args: Any) -> tuple[np.ndarray, np.ndarray]:
-        if threading.current_thread() is not threading.main_thread():
+    def recording(X: np.ndarray, *args: Any) -> tuple[np.ndarray, np.ndarray]:
+        on_main = threading.current_thread() is threading.main_thread()
+        calls.append((on_main, X.shape[0]))
+        if fail_off_the_main_thread and not on_main:
             raise MemoryError("a worker ran out of memory")
-        return decide_rows(*args)
+        return decide_rows(X, *args)
 
-    monkeypatch.setattr(kernel, "decide_rows", failing_off_the_main_thread)
+    monkeypatch.setattr(kernel, "decide_rows", recording)
+    return calls
+
+
+@pytest.mark.parametrize("threads", [2, 3])
+def test_each_thread_takes_one_block_of_whole_chunks(threads: int, monkeypatch: pytest.MonkeyPatch) -> None:
+    rule = random_rule(13, "full")
+    rows = PARALLEL_MIN_ROWS + 3 * kernel.CHUNK_ROWS + 17
+    calls = blocks_by_thread(monkeypatch)
+    rule.decide(sample(rule, 14, rows), threads=threads)
+    assert len(calls) == threads and sum(on_main for on_main, _ in calls) == 1
+    assert sum(size for _, size in calls) == rows
+    assert sorted(size % kernel.CHUNK_ROWS for _, size in calls)[:-1] == [0] * (threads - 1)
+
+
+def test_a_batch_below_the_parallel_minimum_stays_on_the_calling_thread(monkeypatch: pytest.MonkeyPatch) -> None:
+    # PARALLEL_MIN_ROWS: "smaller batches run on the calling thread"; from it on, the threads share the batch
+    rule = random_rule(13, "full")
+    X = sample(rule, 15, PARALLEL_MIN_ROWS)
+    blocks_by_thread(monkeypatch, fail_off_the_main_thread=True)
+    for threads in (1, 2, 3):
+        rule.decide(X[:-1], threads=threads)
+    rule.decide(X, threads=1)
+    # and a failure on a worker thread is raised on the calling thread
     with pytest.raises(MemoryError, match="a worker ran out of memory"):
-        rule.decide(sample(rule, 15, PARALLEL_MIN_ROWS), threads=2)
+        rule.decide(X, threads=2)
+
+
+def peak_bytes(function: Any, X: np.ndarray) -> int:
+    """The largest amount of memory traced while ``function(X)`` ran (numpy reports its arrays to tracemalloc)."""
+    tracemalloc.start()
+    try:
+        function(X)
+        return tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+
+
+def test_beyond_one_chunk_memory_grows_with_the_batch_by_the_outputs_only() -> None:
+    # CHUNK_ROWS bounds the work arrays whatever the input size: from 8 to 32 chunks of rows, decide's peak grows
+    # by the action and validity of each extra row (9 bytes), and posteriors' by the posteriors, risks, validity
+    # and novelty of each (74 bytes here); the full form's (rows, K·d) work array alone would be 160 bytes a row
+    rule = random_rule(41, "full", n_classes=4, dim=5)
+    small, large = (sample(rule, 42, chunks * kernel.CHUNK_ROWS) for chunks in (8, 32))
+    extra_rows = large.shape[0] - small.shape[0]
+    outputs = (len(rule.classes) + len(rule.actions)) * 8 + 2
+    assert peak_bytes(rule.decide, large) - peak_bytes(rule.decide, small) <= extra_rows * (9 + 8)
+    assert peak_bytes(rule.posteriors, large) - peak_bytes(rule.posteriors, small) <= extra_rows * (outputs + 16)
 
 
 def test_threads_must_be_positive() -> None:
@@ -407,6 +456,16 @@ def test_a_row_exactly_at_the_novelty_threshold_is_inside_the_region() -> None:
     assert [rule.decide_one({"x0": x}) for x in X[:, 0].tolist()] == ["a0", "a1", "reject", "reject"]
 
 
+def test_a_novel_row_is_valid_input_under_invalid_input_error() -> None:
+    # novelty is a decision (the reject action, reason novelty), not invalid input: a strict rule does not raise
+    rule = gaussian_rule(
+        np.array([[0.0], [10.0]]), np.ones((2, 1, 1)), [0.5, 0.5], 1.0 - np.eye(2), 0.4, "error", novelty_coverage=0.9
+    )
+    far = np.array([[40.0]])
+    assert rule.decide_names(far).tolist() == ["reject"] and rule.decide_one({"x0": 40.0}) == "reject"
+    assert rule.explain(np.vstack([far, far])).reason.tolist() == ["novelty", "novelty"]
+
+
 def test_a_class_with_a_zero_prior_has_no_region() -> None:
     # a row inside only the zero-prior class's region is outside every region that counts (NOV-1)
     rule = novelty_rule(4.0, priors=(1.0, 0.0))
@@ -500,6 +559,14 @@ def test_the_prior_shift_divides_by_the_trained_priors() -> None:
     shifted = p * np.array([0.2, 0.3, 0.5]) / np.array([0.5, 0.3, 0.2])
     expected = shifted / shifted.sum(axis=1, keepdims=True)
     np.testing.assert_allclose(mapped_posterior_rule({}).posteriors(p), expected, rtol=1e-12)
+
+
+def test_a_dirichlet_map_is_a_linear_layer_on_log_probabilities() -> None:
+    # references.md CAL-2 (Kull et al. 2019): ln q = W ln max(p, ε) + b + const, then the prior shift of SA-1
+    p = np.array([[0.6, 0.3, 0.1], [0.2, 0.5, 0.3], [0.0, 0.36, 0.64]])
+    scores = np.log(np.maximum(p, 1e-12)) @ DIRICHLET["calibration_weights"].T + DIRICHLET["calibration_bias"]
+    expected = scipy.special.softmax(scores + np.log([0.2, 0.3, 0.5]) - np.log([0.5, 0.3, 0.2]), axis=1)
+    np.testing.assert_allclose(renormalising_rule(False).posteriors(p), expected, rtol=1e-12)
 
 
 def test_a_temperature_map_raises_the_probabilities_to_one_over_t() -> None:
