@@ -5,6 +5,7 @@ Every case also runs through the standalone module, which must agree with the ru
 
 from __future__ import annotations
 
+import re
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from decimal import Decimal
@@ -344,3 +345,46 @@ def test_decide_one_accepts_numpy_and_large_python_numbers(packhouse: Rule, inco
     assert packhouse.decide_one(as_numpy) == packhouse.decide_names(np.float32(incoming[:1]))[0]
     # 10**300 is a finite float64 far outside every class: invalid (every density underflows), so deferred
     assert packhouse.decide_one(record | {"mass_g": 10**300}) == "hold_for_inspector"
+
+
+# --- messages that name what is wrong, and how much of it -----------------------------------------------
+
+
+@pytest.mark.parametrize(("extra", "listed"), [(7, "'c6']"), (8, "'c6' and 1 more]"), (10, "'c6' and 3 more]")])
+def test_a_message_lists_ten_names_then_counts_the_rest(
+    extra: int, listed: str, packhouse: Rule, incoming: np.ndarray
+) -> None:
+    # the table has three of the four features and `extra` other columns: 3 + 7 = 10 names are all shown
+    columns = frame(incoming[:3], packhouse.features[:3]) | {f"c{i}": incoming[:3, 0] for i in range(extra)}
+    with pytest.raises(InputError, match=re.escape(listed)) as refused:
+        packhouse.decide(columns)
+    assert str(refused.value).endswith(listed) and "'c7'" not in str(refused.value)
+
+
+def test_a_long_value_is_shown_cut_to_forty_characters(packhouse: Rule, incoming: np.ndarray) -> None:
+    record = dict(zip(packhouse.features, incoming[0].tolist(), strict=True))
+    fits = "x" * 38  # its repr, quotes included, is 40 characters: shown whole
+    with pytest.raises(InputError, match=re.escape(f"got str {fits!r}") + "$"):
+        packhouse.decide_one(record | {"brix": fits})
+    cut = "x" * 39  # 41 characters: the first 37, then "..."
+    with pytest.raises(InputError, match=re.escape(f"got str {cut!r}"[:45] + "...") + "$"):
+        packhouse.decide_one(record | {"brix": cut})
+
+
+def test_a_record_of_text_only_is_refused_naming_the_first_feature(packhouse: Rule) -> None:
+    with pytest.raises(InputError, match="feature 'firmness_n' must be a number, got str '41'"):
+        packhouse.decide_one({name: "41" for name in packhouse.features})
+
+
+def test_a_column_of_two_dimensions_is_refused(packhouse: Rule, incoming: np.ndarray) -> None:
+    columns = frame(incoming, packhouse.features) | {"mass_g": incoming[:, 2:]}
+    with pytest.raises(InputError, match=re.escape("column 'mass_g' has shape (600, 2); a column must be one-dim")):
+        packhouse.decide(columns)
+
+
+def test_masking_never_writes_to_the_callers_array(packhouse: Rule, incoming: np.ndarray) -> None:
+    X = incoming[:6].copy()
+    mask = np.zeros(X.shape, dtype=bool)
+    mask[1, 2] = True
+    packhouse.decide(np.ma.MaskedArray(X, mask=mask))
+    np.testing.assert_array_equal(X, incoming[:6])
