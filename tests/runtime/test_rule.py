@@ -2,8 +2,11 @@
 
 from __future__ import annotations
 
+import contextlib
+import errno
 import io
 import json
+import os
 import re
 import subprocess
 import sys
@@ -201,6 +204,21 @@ def test_a_file_larger_than_the_cap_is_refused_by_its_size(
     monkeypatch.setattr(rule_module, "MAX_RULE_BYTES", size - 1)
     monkeypatch.setattr(artefact_module, "MAX_RULE_BYTES", size - 1)
     with pytest.raises(ArtefactError, match=f"{size} bytes is larger than a rule file may be"):
+        load_rule(packhouse_file)
+
+
+def test_a_file_that_cannot_be_opened_or_read_is_refused_with_the_system_message(
+    packhouse_file: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    with pytest.raises(ArtefactError, match=r"absent\.rule: cannot read: No such file or directory$"):
+        load_rule(tmp_path / "absent.rule")
+
+    class FailingDisk(io.RawIOBase):
+        def read(self, size: int = -1) -> bytes:
+            raise OSError(errno.EIO, "Input/output error")
+
+    monkeypatch.setattr(os, "fdopen", lambda *args, **kwargs: contextlib.nullcontext(FailingDisk()))
+    with pytest.raises(ArtefactError, match=r"packhouse\.rule: cannot read: Input/output error$"):
         load_rule(packhouse_file)
 
 
