@@ -463,6 +463,7 @@ def test_a_novel_row_is_valid_input_under_invalid_input_error() -> None:
     )
     far = np.array([[40.0]])
     assert rule.decide_names(far).tolist() == ["reject"] and rule.decide_one({"x0": 40.0}) == "reject"
+    assert rule.decide_names(np.vstack([far, far])).tolist() == ["reject", "reject"]
     assert rule.explain(np.vstack([far, far])).reason.tolist() == ["novelty", "novelty"]
 
 
