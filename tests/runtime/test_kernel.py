@@ -588,6 +588,8 @@ def test_invalid_rows_message_names_columns_for_the_first_ten_rows_in_the_caller
     named = [f"row {row + 1}: 'y'" for row in range(1, 11)]
     assert message.endswith("(" + "; ".join(named) + ")")
     assert "and 3 more (1-based)" in message
+    eleven = np.arange(14) < 11
+    assert "row(s) 0, 1, 2, 3, 4, 5, 6, 7, 8, 9 and 1 more (0-based)" in kernel.invalid_rows_message(~eleven)
     finite_only = kernel.invalid_rows_message(~np.eye(14, dtype=bool)[13], prepared=prepared, features=("x", "y"))
     assert finite_only.endswith("impossible evidence")
     assert kernel.invalid_rows_message(valid, prepared=prepared).endswith("impossible evidence")
