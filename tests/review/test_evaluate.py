@@ -11,6 +11,8 @@ import csv
 import json
 import textwrap
 from pathlib import Path
+from types import SimpleNamespace
+from typing import cast
 
 import numpy as np
 import pyarrow as pa
@@ -21,8 +23,10 @@ from click.testing import CliRunner
 from sklearn.calibration import calibration_curve
 
 from policyc.cli import main
-from policyc.review.evaluate.evaluation import evaluate
+from policyc.review.evaluate.evaluation import ECE_WARNING, CalibrationReport, evaluate, limit_checks
+from policyc.review.evaluate.render import render_evaluation
 from policyc.review.shared.loading import load_rule_or_policy
+from policyc.runtime import Rule
 
 ROOT = Path(__file__).resolve().parents[2]
 CLAIMS = ROOT / "policies-demo" / "claims"
@@ -323,3 +327,141 @@ def test_per_class_error_rates_and_invalid_rows_are_counted(hand: tuple[Path, Pa
     # hand-computed: ok has 5 rows (one declined: an error), bad has 5 rows (one accepted: an error)
     assert [entry.rows for entry in result.per_class] == [5, 5]
     assert [entry.error_rate for entry in result.per_class] == pytest.approx([1 / 5, 1 / 5], abs=1e-12)
+
+
+def test_a_tie_at_the_reject_cost_is_accepted_as_chow_states(hand: tuple[Path, Path]) -> None:
+    # Chow 1970 (references.md CH-1): accept iff max posterior >= 1 - t, i.e. iff the least risk is at most the
+    # reject cost. Sweeping the curve exactly through each row's least risk puts that row on the boundary.
+    policy, data = hand
+    loaded = load_rule_or_policy(policy)
+    posteriors = np.array([[float(f"{1 - q:.2f}"), float(f"{q:.2f}")] for q, _ in HAND_ROWS])  # as in the file
+    least = loaded.rule.risks(posteriors)[:, :2].min(axis=1)
+    result = evaluate(loaded, data, "truth", extra_costs=tuple(least.tolist()))
+    at = {p.reject_cost: p for p in result.curve}
+    for cost in least:
+        assert at[cost].reject_rate == np.count_nonzero(least > cost) / len(HAND_ROWS)
+
+
+def test_limits_at_their_boundaries_match_scipys_clopper_pearson() -> None:
+    rule = load_rule_or_policy(R6).rule  # max_share hold_for_inspector 0.05, min_recall defect 0.99 by juice or hold
+    # rows: true class (premium, standard, defect); columns: pack_premium, pack_standard, juice, hold_for_inspector.
+    # Expected (holds, clearly broken) of the cap and the recall: a rate exactly at its limit still holds; a limit
+    # is clearly broken only when the whole interval lies beyond it (hand-checked against the intervals).
+    cases = [
+        ([[91, 0, 0, 9], [0, 0, 0, 0], [0, 1, 98, 1]], [(True, False), (True, False)]),  # 10/200 held, 99/100 caught
+        ([[20, 0, 0, 0], [0, 0, 0, 0], [0, 0, 5, 0]], [(True, False), (True, False)]),  # none held, all caught
+        ([[10, 0, 0, 10], [0, 0, 0, 0], [0, 9, 1, 0]], [(False, True), (False, True)]),  # 10/30 held, 1/10 caught
+    ]
+    for counts, verdicts in cases:
+        confusion = np.array(counts)
+        checks = limit_checks(rule, confusion, 0.9)
+        judged = [
+            (int(confusion.sum()), int(confusion[:, 3].sum())),
+            (int(confusion[2].sum()), int(confusion[2, 2:].sum())),
+        ]
+        for check, (rows, count), verdict in zip(checks, judged, verdicts, strict=True):
+            # Clopper & Pearson 1934 exact interval as scipy.stats.binomtest computes it (low 0 at no success,
+            # high 1 at all successes)
+            exact = scipy.stats.binomtest(count, rows).proportion_ci(confidence_level=0.9, method="exact")
+            assert (check.rows, check.count, check.rate) == (rows, count, count / rows), counts
+            assert (check.low, check.high) == pytest.approx((exact.low, exact.high), abs=1e-12), counts
+            assert (check.holds, check.clearly_broken) == verdict, counts
+
+
+def test_an_interval_touching_the_limit_is_not_clearly_broken() -> None:
+    rule = load_rule_or_policy(R6).rule
+    confusion = np.array([[91, 0, 0, 9], [0, 0, 0, 0], [0, 1, 98, 1]])
+    cap, recall = limit_checks(rule, confusion, 0.9)
+    # the same limits moved onto the interval's near end: the limit is inside the closed interval
+    limits = [
+        {**figures, "share": edge}
+        for figures, edge in zip(rule.manifest["limits"]["limits"], (cap.low, recall.high), strict=True)
+    ]
+    touching = SimpleNamespace(manifest={"limits": {"limits": limits}}, actions=rule.actions, classes=rule.classes)
+    assert [c.clearly_broken for c in limit_checks(cast(Rule, touching), confusion, 0.9)] == [False, False]
+
+
+def test_calibration_warns_only_above_the_threshold_and_on_any_class() -> None:
+    # ECE_WARNING: warn when a class's expected calibration error exceeds 0.05 (common practice, no source)
+    assert not CalibrationReport(("a", "b"), ((), ()), (0.01, ECE_WARNING)).warning
+    assert CalibrationReport(("a", "b"), ((), ()), (0.01, 0.2)).warning
+    assert CalibrationReport(("a", "b"), ((), ()), (0.2, 0.01)).warning
+
+
+def test_reliability_bins_are_tenths_holding_their_mean_prediction() -> None:
+    result = evaluate(load_rule_or_policy(CLAIMS / "policy.yaml"), CLAIMS / "holdout.csv", "outcome")
+    assert result.calibration is not None
+    for table in result.calibration.tables:
+        # equal-width right-closed bins (lo, hi] of width 1/10, as scikit-learn's calibration_curve uses
+        for reliability in table:
+            assert reliability.high - reliability.low == pytest.approx(0.1, abs=1e-12)
+            assert reliability.low <= reliability.mean_predicted <= reliability.high
+
+
+# Hand-computed, two classes and three actions, no reject option: R(accept) = 10 q, R(investigate) = 1 + q,
+# R(decline) = 3 - 3 q, so accept for q <= 1/9, investigate up to q = 1/2, decline above. V = max_q min_a R = 1.5
+# at q = 1/2 (references.md CH-6).
+THREE_ACTIONS = """\
+policy: three-actions
+revision: 1
+classes: [ok, bad]
+priors: {ok: 0.7, bad: 0.3}
+actions: [accept, investigate, decline]
+loss:
+  accept: {ok: 0, bad: 10}
+  investigate: {ok: 1, bad: 2}
+  decline: {ok: 3, bad: 0}
+evidence:
+  kind: posterior
+  columns: {ok: p_ok, bad: p_bad}
+  trained_priors: {ok: 0.7, bad: 0.3}
+  calibration: {method: none}
+"""
+# (q, true class): accept 10 (error), accept 0, investigate 1 (error), investigate 2 (error), decline 3 (error),
+# decline 0. An error is a loss above the least loss of the true class: 0 for both classes.
+THREE_ACTION_ROWS = [(0.02, "bad"), (0.05, "ok"), (0.3, "ok"), (0.3, "bad"), (0.8, "ok"), (0.8, "bad")]
+
+
+def write_rows(path: Path, rows: list[tuple[float, str]]) -> Path:
+    with path.open("w", newline="", encoding="utf-8") as handle:
+        writer = csv.writer(handle)
+        writer.writerow(["p_ok", "p_bad", "truth"])
+        writer.writerows([[f"{1 - q:.2f}", f"{q:.2f}", label] for q, label in rows])
+    return path
+
+
+def test_a_rule_without_reject_option_with_more_actions_than_classes(tmp_path: Path) -> None:
+    policy = tmp_path / "three.yaml"
+    policy.write_text(THREE_ACTIONS, encoding="utf-8")
+    data = write_rows(tmp_path / "three.csv", THREE_ACTION_ROWS)
+    result = evaluate(load_rule_or_policy(policy), data, "truth", extra_costs=(0.3,))
+    assert result.confusion.tolist() == [[1, 1, 1], [1, 1, 1]]  # hand-computed
+    assert (result.risk.estimate, result.reject_rate) == pytest.approx((16 / 6, 0.0), abs=1e-12)  # hand-computed
+    assert (result.error_rate, result.accepted_error_rate) == pytest.approx((4 / 6, 4 / 6), abs=1e-12)
+    assert result.reach_value == pytest.approx(1.5, abs=1e-9)  # hand-computed V (references.md CH-6)
+    # at c = V deferring is never chosen (references.md CH-6): the curve's last point is the rule itself
+    last = result.curve[-1]
+    assert (last.reject_cost, last.risk, last.reject_rate, last.error_rate) == pytest.approx(
+        (1.5, 16 / 6, 0.0, 4 / 6), abs=1e-12
+    )
+    # c = 0.3: only the q = 0.02 row (least risk 0.2) is accepted, and it is an error (hand-computed)
+    single = next(p for p in result.curve if p.reject_cost == 0.3)
+    assert (single.risk, single.reject_rate, single.accepted_error_rate) == pytest.approx(
+        ((10 + 5 * 0.3) / 6, 5 / 6, 1.0), abs=1e-12
+    )
+
+
+def test_a_file_of_one_row_is_evaluated(hand: tuple[Path, Path], tmp_path: Path) -> None:
+    policy, _ = hand
+    data = write_rows(tmp_path / "one.csv", [(0.9, "ok")])  # declined, loss 1: an error (hand-computed)
+    result = evaluate(load_rule_or_policy(policy), data, "truth")
+    assert (result.rows, result.risk.estimate, result.error_rate) == (1, 1.0, 1.0)
+
+
+def test_the_cli_report_is_the_librarys_default_report(hand: tuple[Path, Path]) -> None:
+    # the command is plumbing: by default it reports what evaluate() computes by default
+    policy, data = hand
+    shown = CliRunner().invoke(main, ["evaluate", str(policy), str(data), "--label", "truth", "--format", "json"])
+    assert json.loads(shown.stdout) == json.loads(
+        render_evaluation(evaluate(load_rule_or_policy(policy), data, "truth"), "json")
+    )
