@@ -23,6 +23,7 @@ from click.testing import CliRunner
 from sklearn.calibration import calibration_curve
 
 from policyc.cli import main
+from policyc.evidence.partitions import SerialPartitions
 from policyc.review.evaluate.evaluation import ECE_WARNING, CalibrationReport, evaluate, limit_checks
 from policyc.review.evaluate.render import render_evaluation
 from policyc.review.shared.loading import load_rule_or_policy
@@ -465,3 +466,26 @@ def test_the_cli_report_is_the_librarys_default_report(hand: tuple[Path, Path]) 
     assert json.loads(shown.stdout) == json.loads(
         render_evaluation(evaluate(load_rule_or_policy(policy), data, "truth"), "json")
     )
+
+
+def test_invalid_rows_spread_over_files_are_counted_once_each(hand: tuple[Path, Path], tmp_path: Path) -> None:
+    policy, data = hand
+    policy.write_text(HAND_POLICY + "invalid_input: reject\n", encoding="utf-8")
+    header, *rows = data.read_text(encoding="utf-8").splitlines()
+    parts = tmp_path / "parts"
+    parts.mkdir()
+    # each half of the hand rows with one invalid row: a NaN, and probabilities summing to 0.6
+    for name, half, invalid in [("a.csv", rows[:4], "nan,0.5,ok"), ("b.csv", rows[4:], "0.3,0.3,bad")]:
+        (parts / name).write_text("\n".join([header, *half, invalid]) + "\n", encoding="utf-8")
+    result = evaluate(load_rule_or_policy(policy), parts, "truth")
+    # hand-computed: the rows held at q = 0.10 and 0.15 by risk, one invalid row per file
+    assert (result.rows, result.invalid_rows) == (10, 2)
+    assert result.deferred == {"min-risk": 2, "novelty": 0, "invalid": 2}
+
+
+def test_progress_counts_every_row_once(hand: tuple[Path, Path]) -> None:
+    policy, data = hand
+    reported: list[int] = []
+    progress = SerialPartitions(progress=lambda rows, total, stage="": reported.append(rows))
+    evaluate(load_rule_or_policy(policy), data, "truth", batch_rows=3, partitions=progress)
+    assert sum(reported) == len(HAND_ROWS)
