@@ -303,9 +303,7 @@ evidence:
 
 def test_isotonic_calibration_is_advised_against_below_a_thousand_rows_of_a_class_not_at_it(tmp_path: Path) -> None:
     # Niculescu-Mizil & Caruana (ICML 2005), from memory: isotonic maps overfit below about a thousand rows per class
-    rows = ["0.9,0.1,ok"] * check.ISOTONIC_ADVISED_ROWS_PER_CLASS + ["0.2,0.8,bad"] * (
-        check.ISOTONIC_ADVISED_ROWS_PER_CLASS - 1
-    )
+    rows = ["0.9,0.1,ok"] * 1000 + ["0.2,0.8,bad"] * 999
     (tmp_path / "cal.csv").write_text("p_ok,p_bad,y\n" + "\n".join(rows) + "\n", encoding="utf-8")
     document = parse_source(CALIBRATED, "p.yaml", base_dir=tmp_path)
     report = check_document(document, rules=(RULES_BY_NAME["calibration_data_has_enough_rows"],))
