@@ -388,3 +388,11 @@ def test_masking_never_writes_to_the_callers_array(packhouse: Rule, incoming: np
     mask[1, 2] = True
     packhouse.decide(np.ma.MaskedArray(X, mask=mask))
     np.testing.assert_array_equal(X, incoming[:6])
+
+
+def test_an_array_of_three_dimensions_is_refused_even_with_the_feature_count_second(
+    packhouse: Rule, incoming: np.ndarray
+) -> None:
+    # (n, d, 1), C-ordered float64: what the kernels take in every other respect
+    with pytest.raises(InputError, match="expected a 2-D array of shape"):
+        packhouse.decide(np.ascontiguousarray(incoming[:, :, None]))
