@@ -9,6 +9,7 @@ from pathlib import Path
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
+from threadpoolctl import threadpool_limits
 
 from policyc.errors import DataError
 from policyc.evidence.io import (
@@ -109,6 +110,8 @@ def decide_file(
 ) -> DecisionCounts:
     """Write ``output`` (format from its suffix) with the input rows untouched plus ``action`` (and explanations).
 
+    Reading, deciding and writing overlap on three threads; meanwhile BLAS runs on one thread (threadpoolctl).
+
     A CSV output repeats a CSV input's bytes exactly and appends the new cells to each line; a Parquet input's
     columns keep their types. Raises DataError (nothing is left at ``output``) when the data cannot be used,
     when ``output`` is the input or a read-only file, or when the output cannot be written.
@@ -121,8 +124,13 @@ def decide_file(
     counts = DecisionCounts(dict.fromkeys(rule.actions, 0), dict.fromkeys(REASONS, 0), rule.reject_action)
     total_rows = count_rows(data)
     try:
-        # three threads: the source reads the next batch, this one decides, the writer writes the last one
-        with write_rows(output, source, added) as write, write_behind(write) as write_later:
+        # three threads: the source reads the next batch, this one decides, the writer writes the last one; BLAS
+        # threads of the kernel's own would only compete with them (20% slower, tests/benchmarks/bench_decide_file.py)
+        with (
+            threadpool_limits(1, user_api="blas"),
+            write_rows(output, source, added) as write,
+            write_behind(write) as write_later,
+        ):
             for rows in source.batches():
                 columns, action, valid = _decide_batch(rule, rows, data, explain, added)
                 write_later(rows, columns)

@@ -24,6 +24,7 @@ import pyarrow.parquet as pq
 import pytest
 from click.testing import CliRunner, Result
 from helpers import DEMOS, PACKHOUSE, two_class_text
+from threadpoolctl import threadpool_info
 
 from policyc.batch import decide_file
 from policyc.cli import main
@@ -288,6 +289,18 @@ def test_summary_counts_deferrals_by_reason(tmp_path: Path, explain: bool) -> No
     assert [r["action"] for r in rows] == ["a0", "reject", "reject", "reject"]
     if explain:
         assert [r["reason"] for r in rows] == ["min-risk"] * 3 + ["invalid"]
+
+
+def test_blas_runs_on_one_thread_while_a_file_is_decided_and_as_before_after(packhouse: Path, tmp_path: Path) -> None:
+    # The reader, the deciding thread and the writer share the cores; BLAS threads would compete with them.
+    def blas_threads() -> set[int]:
+        return {pool["num_threads"] for pool in threadpool_info() if pool["user_api"] == "blas"}
+
+    before = blas_threads()
+    during: list[set[int]] = []
+    decide_file(load_rule(packhouse), INCOMING, tmp_path / "out.csv", progress=lambda *_: during.append(blas_threads()))
+    assert during and all(threads == {1} for threads in during)
+    assert blas_threads() == before
 
 
 @pytest.mark.parametrize("name", ["out.csv", "out.parquet"])
