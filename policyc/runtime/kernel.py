@@ -21,6 +21,8 @@ Parameters arrive as a mapping of name to float64 array:
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 
 from .inputs import InputError, feature_matrix
@@ -47,9 +49,11 @@ def plan(evidence: str, params: dict[str, np.ndarray], dtype: type = np.float64)
     derived["loss_t"] = np.ascontiguousarray(loss.T, dtype=dtype)
     derived["constant_rows"] = (loss == loss[:, :1]).all(axis=1)
     derived["constant_costs"] = loss[derived["constant_rows"], 0].astype(dtype)
-    derived["constant_index"] = np.flatnonzero(derived["constant_rows"])
     derived["class_ones"] = np.ones(loss.shape[1], dtype=dtype)
-    derived["loss_t_sum"] = np.hstack([loss.T, np.ones((loss.shape[1], 1))]).astype(dtype)  # [λᵀ, 1]
+    # [λᵀ, 1] with the constant rows' columns zeroed: their risk is then 0 / Σ + cost = cost exactly (decide_row)
+    varying = np.where(derived["constant_rows"][:, None], 0.0, loss)
+    derived["loss_t_sum"] = np.hstack([varying.T, np.ones((loss.shape[1], 1))]).astype(dtype)
+    derived["constant_shift"] = np.where(derived["constant_rows"], loss[:, 0], 0.0).astype(dtype)
     if evidence == "gaussian":
         derived |= {name: array.astype(dtype) for name, array in _gaussian_plan(params).items()}
     if "novelty_threshold" in params:
@@ -353,7 +357,7 @@ def decide_row(x: np.ndarray, evidence: str, rule_plan: dict[str, np.ndarray], i
     ulps of each other (a one-row product may sum in another order than a many-row one).
     """
     with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
-        if evidence == "gaussian" and rule_plan["form"] == 0.0:
+        if evidence == "gaussian" and rule_plan["form"].item() == 0.0:  # item(): a Python compare, not numpy's
             z = (x - rule_plan["centre"]) @ rule_plan["whitening_t"]
             z -= rule_plan["whitened_means"]
             z *= z
@@ -365,7 +369,7 @@ def decide_row(x: np.ndarray, evidence: str, rule_plan: dict[str, np.ndarray], i
         else:
             scores = SCORES[evidence](x[None, :], rule_plan, np.empty((1, rule_plan["loss_t"].shape[0])), {})[0]
         top = scores.max()  # NaN propagates (a NaN score of one class makes the row invalid, as in _chunk)
-        if top - top != 0.0:  # NaN or ±inf: the row is invalid (see gaussian_scores)
+        if not math.isfinite(top):  # NaN or ±inf: the row is invalid (see gaussian_scores)
             return invalid_action, False
         if "novelty_threshold" in rule_plan and novel_rows(x[None, :], rule_plan)[0]:
             return invalid_action, True  # the reject action, for novelty
@@ -375,9 +379,10 @@ def decide_row(x: np.ndarray, evidence: str, rule_plan: dict[str, np.ndarray], i
         np.exp(scores, out=scores)
         unnormalised = (scores @ rule_plan["loss_t_sum"]).tolist()
     normaliser = unnormalised.pop()
-    risks = [risk / normaliser for risk in unnormalised]  # a few actions: Python's division beats a numpy call
-    for index, cost in zip(rule_plan["constant_index"].tolist(), rule_plan["constant_costs"].tolist(), strict=True):
-        risks[index] = cost  # the reject row's risk is exactly its cost
+    # R(a|x) = unnormalised_a / Σ + shift_a: a constant row's risk is exactly its cost, the others' shift is 0.0;
+    # Python's arithmetic on a few values beats numpy calls
+    shifts = rule_plan["constant_shift"].tolist()
+    risks = [risk / normaliser + shift for risk, shift in zip(unnormalised, shifts, strict=True)]
     return risks.index(min(risks)), True  # the first minimum: ties go to the earlier action
 
 
