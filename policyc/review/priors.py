@@ -84,8 +84,8 @@ class PriorEstimate:
     @computed_field  # type: ignore[prop-decorator]
     @property
     def rejects_no_change(self) -> bool:
-        """Whether the change test rejects "no change" at level 1 - confidence."""
-        return self.p_value < 1.0 - self.confidence
+        """Whether the change test rejects "no change" at level 1 - confidence: p-value <= 1 - confidence."""
+        return self.p_value <= 1.0 - self.confidence
 
 
 def estimate_priors_from_posteriors(
