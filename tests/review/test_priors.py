@@ -2,14 +2,24 @@
 
 from __future__ import annotations
 
+import dataclasses
 import json
+import re
 from pathlib import Path
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from scipy import optimize, special, stats
 
-from policyc.review.priors import estimate_priors_from_posteriors, render_priors
+from policyc.review.priors import (
+    PriorEstimate,
+    estimate_priors_from_posteriors,
+    render_priors,
+    rounded_priors,
+    verdict,
+)
 
 CLASSES = ("a", "b", "c")
 MEANS = np.array([[0.0, 0.0], [2.0, 0.0], [0.0, 2.0]])
@@ -122,8 +132,6 @@ def test_priors_says_the_verdict_in_words_and_prints_a_block_that_checks_clean(t
 
 
 def test_priors_says_when_the_test_does_not_reject_no_change() -> None:
-    from policyc.review.priors import render_priors
-
     uniform = np.full(3, 1 / 3)
     posteriors, _ = _exact_posteriors(uniform, 2000, seed=1)
     estimate = estimate_priors_from_posteriors(posteriors, uniform, CLASSES)
@@ -132,8 +140,6 @@ def test_priors_says_when_the_test_does_not_reject_no_change() -> None:
 
 
 def test_rounded_priors_sum_to_one_exactly_in_decimals() -> None:
-    from policyc.review.priors import rounded_priors
-
     posteriors, _ = _exact_posteriors(np.array([1 / 3, 1 / 3, 1 / 3]), 3000, seed=2)
     estimate = estimate_priors_from_posteriors(posteriors, np.array([0.2, 0.3, 0.5]), CLASSES)
     rounded = rounded_priors(estimate)
@@ -407,3 +413,61 @@ def test_a_file_with_a_class_of_zero_prior_is_estimated_as_its_posteriors_are(tm
     reference = estimate_priors_from_posteriors(rule.posteriors(values), np.array([0.4, 0.6, 0.0]), tuple(classes))
     assert estimate.priors[2] == 0.0 and estimate.high[2] == 0.0  # a class the rule rules out stays out
     np.testing.assert_allclose(estimate.priors, reference.priors, rtol=1e-12)
+
+
+# --- the report: the verdict's boundary, the degrees of freedom shown, the block to paste -------------------
+
+
+def test_a_p_value_equal_to_the_level_rejects_no_change() -> None:
+    # A test from a p-value rejects H0 at level α iff p ≤ α (Casella & Berger, Statistical Inference, 2nd ed.,
+    # Theorem 8.3.27; from memory): the boundary p = α = 1 - confidence rejects, the next double above it does not.
+    posteriors, _ = _exact_posteriors(UNIFORM, 500, seed=1)
+    estimate = estimate_priors_from_posteriors(posteriors, UNIFORM, CLASSES)
+    level = 1.0 - estimate.confidence
+    at_level = dataclasses.replace(estimate, p_value=level)
+    assert at_level.rejects_no_change
+    assert 'The change test rejects "no change" at the 0.05 level' in verdict(at_level)
+    above = dataclasses.replace(estimate, p_value=float(np.nextafter(level, 1.0)))
+    assert not above.rejects_no_change
+    assert 'does not reject "no change"' in verdict(above)
+
+
+@pytest.mark.parametrize(("rule_priors", "active"), [(UNIFORM, 3), (np.array([0.5, 0.5, 0.0]), 2)])
+def test_the_text_report_shows_the_degrees_of_freedom_of_its_p_value(rule_priors: np.ndarray, active: int) -> None:
+    # references.md SA-4: χ² on K' - 1 degrees of freedom, K' the classes with a non-zero rule prior; the p-value the
+    # report prints is scipy's χ² survival function of the statistic at the degrees of freedom it prints.
+    posteriors, _ = _exact_posteriors(np.array([0.5, 0.3, 0.2]), 1000, seed=23)
+    posteriors = posteriors * (rule_priors > 0)  # a class of prior 0 has posterior 0 everywhere
+    posteriors /= posteriors.sum(axis=1, keepdims=True)
+    estimate = estimate_priors_from_posteriors(posteriors, rule_priors, CLASSES)
+    shown = re.search(r"\(chi-squared, (\d+) degrees of freedom\)", render_priors(estimate, "text"))
+    assert shown is not None and int(shown.group(1)) == active - 1
+    assert estimate.p_value == pytest.approx(stats.chi2.sf(estimate.change_statistic, int(shown.group(1))), rel=1e-9)
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.one_of(st.just(0.0), st.floats(1e-3, 1.0)), min_size=2, max_size=6).filter(lambda w: sum(w) > 0))
+def test_the_pasted_priors_round_to_four_decimals_and_give_the_remainder_to_the_largest_class(
+    weights: list[float],
+) -> None:
+    # The block to paste states each prior in 4 decimals (the report's stated precision, CHANGES.md: "rounded,
+    # summing to 1"); every class keeps its own rounding except one class of largest rounded estimate, which takes
+    # the remainder, so a class the rule rules out (estimate 0) stays 0. A law for every mix; no source.
+    priors = np.array(weights) / sum(weights)
+    names = tuple(f"c{k}" for k in range(priors.size))
+    estimate = dataclasses.replace(_any_estimate(priors.size), classes=names, priors=priors)
+    pasted = np.array(list(rounded_priors(estimate).values()))
+    own = np.round(priors, 4)
+    assert np.all(np.round(pasted, 4) == pasted)  # no more than 4 decimals
+    assert abs(pasted.sum() - 1.0) < 1e-12
+    adjusted = np.flatnonzero(pasted != own)
+    assert adjusted.size <= 1 and all(own[k] == own.max() for k in adjusted)
+    assert np.all(pasted[priors == 0.0] == 0.0)
+    assert np.all(np.abs(pasted - priors) <= priors.size * 0.5e-4 + 1e-12)
+
+
+def _any_estimate(n_classes: int) -> PriorEstimate:
+    """An estimate to vary with dataclasses.replace: its classes, priors and intervals are replaced or unread."""
+    rule_priors = np.full(n_classes, 1 / n_classes)
+    posteriors = np.tile(rule_priors, (4, 1))
+    return estimate_priors_from_posteriors(posteriors, rule_priors, tuple(f"c{k}" for k in range(n_classes)))
