@@ -15,7 +15,6 @@ from __future__ import annotations
 import os
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
-from functools import lru_cache
 from pathlib import Path
 from typing import Any, TypeVar
 
@@ -27,7 +26,7 @@ from distributed import Client, Future, LocalCluster, as_completed
 from policyc.errors import PolicycError
 from policyc.evidence.base import Progress
 from policyc.evidence.partitions import KeptPartitions, Leaf, Task, tree_reduce
-from policyc.runtime import InputError, Rule, rule_from_bytes
+from policyc.runtime import InputError, Rule, shared_rule_from_bytes
 
 __all__ = ["ClusterError", "DaskPartitions", "connect", "decide_dataframe"]
 
@@ -151,11 +150,6 @@ class KeptOnWorkers:
         return tree_reduce(self.client.gather(results), combine)
 
 
-@lru_cache(maxsize=4)
-def _rule(rule_bytes: bytes) -> Rule:
-    return rule_from_bytes(rule_bytes, "<rule bytes>")
-
-
 def _output_columns(rule: Rule, posteriors: bool, risks: bool, reasons: bool) -> dict[str, Any]:
     columns: dict[str, Any] = {"action": pd.StringDtype()}
     columns |= {f"posterior_{name}": np.float64 for name in rule.classes} if posteriors else {}
@@ -168,7 +162,7 @@ def _decide_pandas(
     frame: pd.DataFrame, rule_bytes: bytes, posteriors: bool, risks: bool, reasons: bool
 ) -> pd.DataFrame:
     """Decide one partition (runs on a worker); the runtime selects the rule's features by name."""
-    rule = _rule(rule_bytes)
+    rule = shared_rule_from_bytes(rule_bytes)
     assessment = rule.assess(frame)
     if rule.invalid_input == "error" and not assessment.valid.all():
         first = int(np.flatnonzero(~assessment.valid)[0])
@@ -201,7 +195,7 @@ def decide_dataframe(
     an :class:`~policyc.runtime.InputError` naming the row's index when the rule says ``invalid_input: error``.
     """
     rule_bytes = rule if isinstance(rule, bytes) else Path(rule).read_bytes()
-    loaded = _rule(rule_bytes)  # verifies the artefact here, before any worker sees it
+    loaded = shared_rule_from_bytes(rule_bytes)  # verifies the artefact here, before any worker sees it
     missing = [name for name in loaded.features if name not in frame.columns]
     if missing:
         raise InputError(f"the data has no column(s) {missing}; the rule needs {list(loaded.features)}")

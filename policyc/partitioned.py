@@ -13,14 +13,13 @@ from __future__ import annotations
 import glob
 from collections.abc import Sequence
 from dataclasses import dataclass
-from functools import lru_cache
 from pathlib import Path
 
 from policyc.batch import DecisionCounts, decide_file
 from policyc.evidence.base import Progress
 from policyc.evidence.io import DataError, data_file_list, expected_rows
 from policyc.evidence.partitions import PartitionRunner, SerialPartitions
-from policyc.runtime import Rule, rule_from_bytes
+from policyc.runtime import shared_rule_from_bytes
 
 __all__ = ["DecideSettings", "Partition", "decide_partition", "decide_partitions", "plan_partitions"]
 
@@ -62,15 +61,9 @@ def plan_partitions(data: Path, out_dir: Path) -> list[Partition]:
     return partitions
 
 
-@lru_cache(maxsize=4)
-def _rule(rule_bytes: bytes, origin: str) -> Rule:
-    """A worker loads each rule once (verified by its content hash) and keeps it for later partitions."""
-    return rule_from_bytes(rule_bytes, origin)
-
-
 def decide_partition(settings: DecideSettings, partition: Partition, progress: Progress | None) -> DecisionCounts:
     """Decide one input file into its output file (runs on a worker); rows per action and deferral reason."""
-    rule = _rule(settings.rule_bytes, settings.rule_origin)
+    rule = shared_rule_from_bytes(settings.rule_bytes, settings.rule_origin)
     return decide_file(rule, Path(partition.data), Path(partition.output), settings.explain, progress)
 
 

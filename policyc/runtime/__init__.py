@@ -10,7 +10,7 @@ from __future__ import annotations
 
 from .artefact import FORMAT_NAME, FORMAT_VERSION
 from .errors import ArtefactError, InputError, PolicycError
-from .rule import REASONS, Explanation, Rule, load_rule, rule_from_bytes
+from .rule import REASONS, Explanation, Rule, load_rule, rule_from_bytes, shared_rule_from_bytes
 
 __all__ = [
     "FORMAT_NAME",
@@ -23,4 +23,5 @@ __all__ = [
     "Rule",
     "load_rule",
     "rule_from_bytes",
+    "shared_rule_from_bytes",
 ]

@@ -8,6 +8,7 @@ import threading
 from collections.abc import Iterator, Mapping
 from contextlib import contextmanager
 from dataclasses import dataclass
+from functools import lru_cache
 from types import MappingProxyType
 from typing import TYPE_CHECKING, Any
 
@@ -389,6 +390,13 @@ def rule_from_bytes(data: bytes, origin: str = "<rule bytes>", *, dtype: DTypeLi
     """Verify an artefact's bytes (received over a network, or from a store) and return its Rule."""
     manifest, params = decode_rule(data, origin)
     return Rule(manifest, params, origin, dtype=dtype)
+
+
+@lru_cache(maxsize=4)
+def shared_rule_from_bytes(data: bytes, origin: str = "<rule bytes>") -> Rule:
+    """:func:`rule_from_bytes`, once per process for the same bytes: a worker that decides (or reads) partition
+    after partition with one rule verifies it once. A Rule never changes, so threads may share it."""
+    return rule_from_bytes(data, origin)
 
 
 def _names(manifest: Mapping[str, Any], field: str, origin: str) -> tuple[str, ...]:

@@ -3,10 +3,9 @@
 from __future__ import annotations
 
 from dataclasses import dataclass
-from functools import lru_cache
 
 from policyc.compiler.artefact import artefact_bytes
-from policyc.runtime import Rule, rule_from_bytes
+from policyc.runtime import Rule, shared_rule_from_bytes
 
 __all__ = ["ShippedRule"]
 
@@ -24,9 +23,4 @@ class ShippedRule:
 
     def load(self) -> Rule:
         """The rule, decoded once per process and kept for the process's later partitions."""
-        return _decoded(self.data)
-
-
-@lru_cache(maxsize=4)
-def _decoded(data: bytes) -> Rule:
-    return rule_from_bytes(data, "<shipped rule>")
+        return shared_rule_from_bytes(self.data, "<shipped rule>")
